@@ -1,0 +1,131 @@
+"""What each CLI command does, written against the library so tests can call it directly."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from contextlib import contextmanager
+from datetime import timedelta
+from pathlib import Path
+from collections.abc import Iterator, Callable
+
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+from . import report
+from .config import load_config
+from .errors import HourRangeError, RecordingError
+from .records import write_jsonl
+from .replay import ReplayResult, replay
+from .scoring import load_labels, score_alerts
+from .timeaxis import format_hour, parse_hour
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO_RECORDING = ROOT / "replay_data" / "demo_week.jsonl.gz"
+DEMO_LABELS = ROOT / "replay_data" / "demo_labels.json"
+
+
+@contextmanager
+def progress_bar(label: str, enabled: bool = True) -> Iterator[Callable[[int, int | None], None]]:
+    """A progress bar on stderr; yields the ``on_hour(done, total)`` callback."""
+    if not enabled or not sys.stderr.isatty():
+        yield lambda done, total: None
+        return
+    columns = (TextColumn(label), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn())
+    with Progress(*columns, console=report.console(stderr=True), transient=True) as bar:
+        task = bar.add_task(label, total=None)
+
+        def on_hour(done: int, total: int | None) -> None:
+            bar.update(task, completed=done, total=total)
+
+        yield on_hour
+
+
+def _report_bad(result: ReplayResult) -> None:
+    for error in result.bad_lines[:20]:
+        print(f"alerter: skipped bad line {error}", file=sys.stderr)
+    if len(result.bad_lines) > 20:
+        print(f"alerter: ... {len(result.bad_lines) - 20} more bad lines skipped", file=sys.stderr)
+
+
+def run_and_report(recording: Path, args: argparse.Namespace, labels: Path | None) -> int:
+    """Replay, write alerts, print the table (and the score when labels are given)."""
+    config = load_config(args.config)
+    with progress_bar("replaying hours", not args.json) as on_hour:
+        result = replay(recording, config, skip_bad=getattr(args, "skip_bad", False), on_hour=on_hour)
+    _report_bad(result)
+    if args.out:
+        write_jsonl(args.out, result.alerts)
+    score = score_alerts(result.alerts, load_labels(labels), config.scoring.slack_hours) if labels else None
+    if args.json:
+        span = result.span
+        report_json = {
+            "recording": str(recording), "hours": len(result.hours),
+            "nodes": len(result.engine.nodes) if result.engine else 0,
+            "span": [format_hour(span[0]), format_hour(span[1])] if span else None,
+            "alerts": len(result.alerts), "bad_lines": len(result.bad_lines),
+            "score": score.to_dict() if score else None,
+        }
+        print(json.dumps(report_json, indent=2, sort_keys=True))
+        return 0
+    out = report.console()
+    out.print(report.alerts_table(result.alerts, args.show))
+    if args.out:
+        out.print(f"wrote {len(result.alerts)} alert(s) to {args.out}")
+    if score:
+        for table in report.score_tables(score):
+            out.print(table)
+    return 0
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
+    return run_and_report(Path(args.recording), args, Path(args.labels) if args.labels else None)
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    if not DEMO_RECORDING.exists():
+        raise RecordingError(str(DEMO_RECORDING), None,
+                             "the bundled demo recording is missing; run 'alerter scenario' to make it")
+    return run_and_report(DEMO_RECORDING, args, DEMO_LABELS)
+
+
+def cmd_explain(args: argparse.Namespace) -> int:
+    config = load_config(args.config)
+    try:
+        at = parse_hour(args.at)
+    except ValueError as exc:
+        raise HourRangeError(f"--at: {exc}") from None
+    with progress_bar("replaying hours", not args.json) as on_hour:
+        result = replay(Path(args.recording), config, skip_bad=args.skip_bad,
+                        watch=(args.node,), on_hour=on_hour)
+    _report_bad(result)
+    assert result.engine is not None
+    result.engine.nodes.get(args.node)  # raises UnknownNodeError with suggestions
+    span = result.span
+    if span is None or not span[0] <= at <= span[1]:
+        bounds = f"{format_hour(span[0])} .. {format_hour(span[1])}" if span else "no hours"
+        raise HourRangeError(f"--at {args.at} is outside the recording ({bounds})")
+    lo, hi = at - timedelta(hours=args.window), at + timedelta(hours=args.window)
+    rows = [r for r in result.trace.get(args.node, []) if lo <= parse_hour(r.hour) <= hi]
+    if args.json:
+        print(json.dumps({"node": args.node, "at": format_hour(at), "hours": [r.to_dict() for r in rows]},
+                         indent=2, sort_keys=True))
+    else:
+        report.console().print(report.history_table(args.node, rows, format_hour(at)))
+    if args.plot:
+        from .plots import plot_history
+
+        plot_history(args.node, rows, format_hour(at), args.plot)
+        if not args.json:
+            print(f"wrote plot to {args.plot}")
+    return 0
+
+
+def cmd_scenario(args: argparse.Namespace) -> int:
+    from .scenario import generate, write_scenario
+
+    scenario = generate(seed=args.seed)
+    paths = write_scenario(scenario, Path(args.out))
+    for path in paths if isinstance(paths, (list, tuple)) else [paths]:
+        print(f"wrote {path}")
+    return 0

@@ -1,0 +1,218 @@
+"""Settings read from YAML and checked by pydantic.
+
+The analyst edits ``config/default.yaml`` (or a copy). Every key is known: an unknown key
+is an error, so a typo never silently falls back to a default. A bad file yields one line
+per problem naming the file, line, dotted key, bad value and what is allowed.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+from pathlib import Path
+from typing import Any, Literal
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+
+from .errors import ConfigError
+
+DEFAULT_CONFIG = Path(__file__).resolve().parent.parent / "config" / "default.yaml"
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class ClockSettings(_Strict):
+    """How hours map to the local day people live by."""
+
+    timezone: str = "America/Denver"
+
+    @field_validator("timezone")
+    @classmethod
+    def _known_zone(cls, value: str) -> str:
+        try:
+            ZoneInfo(value)
+        except (ZoneInfoNotFoundError, ValueError) as exc:
+            raise ValueError(
+                f"unknown time zone {value!r}; use an IANA name such as 'UTC' or 'Europe/Paris'"
+            ) from exc
+        return value
+
+
+class BaselineSettings(_Strict):
+    """Double-seasonal robust exponential smoothing, per node."""
+
+    transform: Literal["log1p", "identity"] = "log1p"
+    dtype: Literal["float32", "float64"] = "float32"
+    alpha: float = Field(0.05, gt=0, le=1)
+    gamma: float = Field(0.10, ge=0, le=1)
+    delta: float = Field(0.02, ge=0, le=1)
+    season_hours: int = Field(24, ge=1, le=8760)
+    weekly: bool = True
+    variance_rate: float = Field(0.03, gt=0, le=1)
+    clip_scales: float = Field(3.0, gt=0)
+    adopt_after_hours: int = Field(12, ge=0)
+    warmup_hours: int = Field(48, ge=0)
+    initial_scale: float = Field(0.5, gt=0)
+    min_scale: float = Field(0.02, ge=0)
+
+
+class DirectionRule(_Strict):
+    """Thresholds for one direction (surge or drop)."""
+
+    enabled: bool = True
+    z: float = Field(4.0, gt=0)
+    min_excess: float = Field(5.0, ge=0)
+    min_ratio: float = Field(1.05, ge=1)
+    min_expected: float = Field(5.0, ge=0)
+    persistence: int = Field(1, ge=1, le=168)
+    cooldown_hours: int = Field(6, ge=0)
+
+
+class PartialDirectionRule(_Strict):
+    """An override: only the keys given replace the group's defaults."""
+
+    enabled: bool | None = None
+    z: float | None = Field(None, gt=0)
+    min_excess: float | None = Field(None, ge=0)
+    min_ratio: float | None = Field(None, ge=1)
+    min_expected: float | None = Field(None, ge=0)
+    persistence: int | None = Field(None, ge=1, le=168)
+    cooldown_hours: int | None = Field(None, ge=0)
+
+    def apply(self, base: DirectionRule) -> DirectionRule:
+        return base.model_copy(update=self.model_dump(exclude_none=True))
+
+
+class RuleOverride(_Strict):
+    """Thresholds for the nodes whose id matches one of the globs."""
+
+    name: str = Field(min_length=1)
+    match: list[str] = Field(min_length=1)
+    surge: PartialDirectionRule = PartialDirectionRule()
+    drop: PartialDirectionRule = PartialDirectionRule()
+
+    def matches(self, node: str) -> bool:
+        return any(fnmatch.fnmatchcase(node, pattern) for pattern in self.match)
+
+
+class RuleSettings(_Strict):
+    """Surge and drop rules; the first matching override wins for a node."""
+
+    surge: DirectionRule = DirectionRule()
+    drop: DirectionRule = DirectionRule(min_excess=20.0, min_ratio=1.5, min_expected=20.0)
+    overrides: list[RuleOverride] = []
+
+
+class ScoringSettings(_Strict):
+    """How alerts are matched to labelled events."""
+
+    slack_hours: int = Field(3, ge=0, le=48)
+
+
+class Config(_Strict):
+    """The whole configuration."""
+
+    clock: ClockSettings = ClockSettings()
+    baseline: BaselineSettings = BaselineSettings()
+    rules: RuleSettings = RuleSettings()
+    scoring: ScoringSettings = ScoringSettings()
+
+
+# --- loading with line numbers -------------------------------------------------------
+
+
+class _LineLoader(yaml.SafeLoader):
+    """A safe loader that remembers the line of every mapping key."""
+
+
+def _construct_mapping(loader: _LineLoader, node: yaml.MappingNode) -> dict[Any, Any]:
+    mapping = {}
+    for key_node, value_node in node.value:
+        key = loader.construct_object(key_node)
+        mapping[key] = loader.construct_object(value_node, deep=True)
+        loader.lines[(id(mapping), key)] = key_node.start_mark.line + 1
+    loader.containers.append(mapping)
+    return mapping
+
+
+_LineLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
+
+
+def _line_of(data: Any, lines: dict[tuple[int, Any], int], loc: tuple[Any, ...]) -> int | None:
+    """The line of the deepest key of ``loc`` that exists in the parsed YAML."""
+    line = None
+    node = data
+    for part in loc:
+        if isinstance(node, dict) and part in node:
+            line = lines.get((id(node), part), line)
+            node = node[part]
+        elif isinstance(node, list) and isinstance(part, int) and part < len(node):
+            node = node[part]
+        else:
+            break
+    return line
+
+
+def _allowed_keys(model: type[BaseModel], loc: tuple[Any, ...]) -> list[str]:
+    """The keys allowed at the parent of ``loc``, for 'unknown key' messages."""
+    current: Any = model
+    for part in loc[:-1]:
+        if isinstance(part, int):
+            continue
+        field = current.model_fields.get(part) if hasattr(current, "model_fields") else None
+        if field is None:
+            return []
+        annotation = field.annotation
+        args = getattr(annotation, "__args__", ())
+        current = args[0] if args and hasattr(args[0], "model_fields") else annotation
+    return sorted(getattr(current, "model_fields", {}))
+
+
+def _describe(error: dict[str, Any], data: Any, lines: dict[tuple[int, Any], int], path: str) -> str:
+    loc = tuple(error["loc"])
+    key = ".".join(str(p) for p in loc) or "(top level)"
+    line = _line_of(data, lines, loc)
+    where = f"{path}:{line}" if line else path
+    if error["type"] == "extra_forbidden":
+        allowed = ", ".join(_allowed_keys(Config, loc)) or "none"
+        return f"{where}: {key}: unknown key; allowed keys here: {allowed}"
+    bad = error.get("input")
+    message = str(error["msg"]).removeprefix("Value error, ")
+    return f"{where}: {key} = {bad!r}: {message}"
+
+
+def parse_config(text: str, path: str = "<string>") -> Config:
+    """Validate YAML text; raise ConfigError listing every problem with its line."""
+    loader = _LineLoader(text)
+    loader.lines = {}
+    loader.containers = []
+    try:
+        data = loader.get_single_data()
+    except yaml.YAMLError as exc:
+        raise ConfigError(path, [f"not valid YAML: {exc}"]) from exc
+    finally:
+        loader.dispose()
+    if data is None:
+        data = {}
+    if not isinstance(data, dict):
+        raise ConfigError(path, [f"the top level must be a mapping of sections, got {type(data).__name__}"])
+    try:
+        return Config.model_validate(data)
+    except ValidationError as exc:
+        problems = [_describe(dict(e), data, loader.lines, path) for e in exc.errors()]
+        raise ConfigError(path, problems) from None
+
+
+def load_config(path: str | Path | None = None) -> Config:
+    """Read a YAML config file; ``None`` means the bundled ``config/default.yaml``."""
+    target = Path(path) if path is not None else DEFAULT_CONFIG
+    if path is None and not target.exists():
+        return Config()
+    try:
+        text = target.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError(str(target), [f"cannot read the file: {exc.strerror}"]) from exc
+    return parse_config(text, str(target))

@@ -1,0 +1,55 @@
+"""The project's one exception hierarchy.
+
+Every error a user can meet says what failed, the bad value and how to fix it. Outside
+exceptions (JSON, OS, Redis, HTTP) are translated at the boundary with ``raise ... from``.
+
+::
+
+    AlerterError                  base: the CLI maps it to a message and exit code 2
+    ├── ConfigError               YAML config invalid: one line per problem (file, line, key)
+    ├── RecordingError            a recording line is malformed (file, line number, reason)
+    ├── LabelsError               a labels file is malformed
+    ├── UnknownNodeError          a node id that the stream never mentioned
+    └── HourRangeError            an hour outside the recording's span
+"""
+
+from __future__ import annotations
+
+
+class AlerterError(Exception):
+    """Base of every error the tool raises on purpose; its text is meant for people."""
+
+    exit_code = 2
+
+
+class ConfigError(AlerterError):
+    """The YAML config is invalid; ``problems`` holds one human line per problem."""
+
+    def __init__(self, path: str, problems: list[str]) -> None:
+        self.path = path
+        self.problems = problems
+        lines = "\n".join(f"  - {p}" for p in problems)
+        super().__init__(f"invalid config {path}: {len(problems)} problem(s)\n{lines}")
+
+
+class RecordingError(AlerterError):
+    """A recording could not be read: names the file and line."""
+
+    def __init__(self, path: str, line: int | None, reason: str) -> None:
+        self.path = path
+        self.line = line
+        self.reason = reason
+        where = f"{path}:{line}" if line is not None else path
+        super().__init__(f"{where}: {reason}")
+
+
+class LabelsError(AlerterError):
+    """A labels file could not be read or does not follow alerter-labels/1."""
+
+
+class UnknownNodeError(AlerterError):
+    """A node id that is not in the stream."""
+
+
+class HourRangeError(AlerterError):
+    """An hour outside the span of the recording."""

@@ -1,0 +1,91 @@
+"""Plain records the engine hands out: alerts, and the per-hour view of one node.
+
+Records hold rounded plain numbers so that their JSON form is the same on every run and
+every machine (the reviewer's replay must give byte-identical files).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from collections.abc import Iterable
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any
+
+__all__ = ["Alert", "NodeHour", "dumps", "write_jsonl"]
+
+
+def _r(value: float, digits: int = 3) -> float:
+    return float(round(float(value), digits))
+
+
+@dataclass(frozen=True)
+class Alert:
+    """One node beyond its forecast for one hour."""
+
+    node: str
+    hour: str
+    kind: str  # "surge" or "drop"
+    observed: float
+    expected: float
+    band_low: float
+    band_high: float
+    excess: float
+    ratio: float
+    score: float
+    rule: str
+    streak: int
+
+    @classmethod
+    def build(cls, *, node: str, hour: str, kind: str, observed: float, expected: float,
+              band_low: float, band_high: float, score: float, rule: str, streak: int) -> Alert:
+        return cls(
+            node=node, hour=hour, kind=kind, observed=_r(observed, 1), expected=_r(expected, 1),
+            band_low=_r(band_low, 1), band_high=_r(band_high, 1),
+            excess=_r(observed - expected, 1), ratio=_r((observed + 1.0) / (expected + 1.0)),
+            score=_r(score, 2), rule=rule, streak=int(streak),
+        )
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+@dataclass(frozen=True)
+class NodeHour:
+    """What the engine saw and expected for one node in one hour (for ``explain``)."""
+
+    hour: str
+    observed: float | None
+    expected: float
+    band_low: float
+    band_high: float
+    score: float | None
+    warm: bool
+    adopted: bool
+    alert: str | None
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+def dumps(record: Any) -> str:
+    """One JSON Lines row, keys sorted, no spaces: stable bytes for stable replays."""
+    data = record.to_dict() if hasattr(record, "to_dict") else record
+    return json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+
+
+def write_jsonl(path: str | os.PathLike[str], records: Iterable[Any]) -> int:
+    """Write records as JSON Lines atomically (temp file, then rename): no half files."""
+    target = Path(path)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    tmp = target.with_name(target.name + ".tmp")
+    count = 0
+    with tmp.open("w", encoding="utf-8", newline="\n") as handle:
+        for record in records:
+            handle.write(dumps(record) + "\n")
+            count += 1
+        handle.flush()
+        os.fsync(handle.fileno())
+    os.replace(tmp, target)
+    return count

@@ -1,0 +1,125 @@
+"""Score alerts against labelled events: precision per direction, recall per kind.
+
+An alert matches an event when it names one of the event's nodes, has the event's
+direction, and falls in ``[start, end + slack)``. Only alerts at or after the labels'
+``labelled_from`` hour are scored. Alerts on an event marked ``alert_expected: false``
+(a level shift the baseline should adopt) count as false alarms.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+from .errors import LabelsError
+from .records import Alert
+from .timeaxis import parse_hour
+
+__all__ = ["LabelledEvent", "Labels", "Score", "load_labels", "score_alerts"]
+
+
+@dataclass(frozen=True)
+class LabelledEvent:
+    id: str
+    kind: str
+    direction: str
+    root: str
+    nodes: dict[str, str]  # node -> "root" | "propagated"
+    start: datetime
+    end: datetime
+    alert_expected: bool = True
+    root_changes_traffic: bool = True
+
+
+@dataclass(frozen=True)
+class Labels:
+    labelled_from: datetime
+    events: list[LabelledEvent]
+
+
+def _event(raw: dict[str, Any]) -> LabelledEvent:
+    return LabelledEvent(
+        id=str(raw["id"]), kind=str(raw["kind"]), direction=str(raw["direction"]),
+        root=str(raw["root"]), nodes={str(k): str(v) for k, v in raw["nodes"].items()},
+        start=parse_hour(raw["start"]), end=parse_hour(raw["end"]),
+        alert_expected=bool(raw.get("alert_expected", True)),
+        root_changes_traffic=bool(raw.get("root_changes_traffic", True)),
+    )
+
+
+def load_labels(path: str | Path) -> Labels:
+    """Read an ``alerter-labels/1`` JSON file."""
+    path = Path(path)
+    try:
+        raw = json.loads(path.read_text(encoding="utf-8"))
+        events = [_event(e) for e in raw["events"]]
+        return Labels(parse_hour(raw["labelled_from"]), events)
+    except OSError as exc:
+        raise LabelsError(f"{path}: cannot read labels: {exc.strerror}") from exc
+    except (ValueError, KeyError, TypeError, AttributeError) as exc:
+        raise LabelsError(f"{path}: not an alerter-labels/1 file: {exc!r}") from exc
+
+
+@dataclass
+class Score:
+    """The figures of one scoring, ready for a table or ``--json``."""
+
+    precision: dict[str, dict[str, float]] = field(default_factory=dict)
+    recall: dict[str, dict[str, float]] = field(default_factory=dict)
+    summary: dict[str, float] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"precision": self.precision, "recall": self.recall, "summary": self.summary}
+
+
+def _matches(alert: Alert, event: LabelledEvent, slack: timedelta) -> bool:
+    if alert.node not in event.nodes or alert.kind != event.direction:
+        return False
+    hour = parse_hour(alert.hour)
+    return event.start <= hour < event.end + slack
+
+
+def _ratio(num: float, den: float) -> float:
+    return round(num / den, 4) if den else float("nan")
+
+
+def score_alerts(alerts: list[Alert], labels: Labels, slack_hours: int = 3) -> Score:
+    """Precision per alert direction and recall per event kind and node role."""
+    slack = timedelta(hours=slack_hours)
+    scored = [a for a in alerts if parse_hour(a.hour) >= labels.labelled_from]
+    wanted = [e for e in labels.events if e.alert_expected]
+    hits: dict[str, set[str]] = {e.id: set() for e in wanted}
+    out = Score()
+    for direction in ("surge", "drop"):
+        mine = [a for a in scored if a.kind == direction]
+        good = 0
+        for a in mine:
+            matched = [e for e in wanted if _matches(a, e, slack)]
+            for e in matched:
+                hits[e.id].add(a.node)
+            good += bool(matched)
+        out.precision[direction] = {"alerts": len(mine), "true": good, "precision": _ratio(good, len(mine))}
+    for kind in sorted({e.kind for e in wanted}):
+        events = [e for e in wanted if e.kind == kind]
+        found = sum(bool(hits[e.id]) for e in events)
+        out.recall[kind] = {"events": len(events), "detected": found, "recall": _ratio(found, len(events))}
+    out.summary = _summary(wanted, hits, out)
+    return out
+
+
+def _summary(wanted: list[LabelledEvent], hits: dict[str, set[str]], score: Score) -> dict[str, float]:
+    origin = [e for e in wanted if e.direction == "surge" and e.root_changes_traffic]
+    prop = [(e, n) for e in wanted for n, role in e.nodes.items() if role == "propagated"]
+    drops = [e for e in wanted if e.direction == "drop"]
+    surges = [e for e in wanted if e.direction == "surge"]
+    return {
+        "originating_surge_recall": _ratio(sum(e.root in hits[e.id] for e in origin), len(origin)),
+        "propagated_node_recall": _ratio(sum(n in hits[e.id] for e, n in prop), len(prop)),
+        "surge_event_recall": _ratio(sum(bool(hits[e.id]) for e in surges), len(surges)),
+        "drop_event_recall": _ratio(sum(bool(hits[e.id]) for e in drops), len(drops)),
+        "surge_precision": score.precision["surge"]["precision"],
+        "drop_precision": score.precision["drop"]["precision"],
+    }
