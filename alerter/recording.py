@@ -110,7 +110,7 @@ def _parse_header(obj: dict[str, Any]) -> Header:
     return Header(fmt, obj.get("tz"), start, int(hours) if hours is not None else None, obj.get("site"))
 
 
-def parse_line(text: str) -> Event:
+def parse_line(text: str, first: bool = True) -> Event:
     """One line to one event; ValueError with a human reason otherwise."""
     try:
         obj = json.loads(text)
@@ -124,6 +124,8 @@ def parse_line(text: str) -> Event:
     if kind in ("edge_add", "edge_remove"):
         return _parse_edge(obj)
     if kind == "header":
+        if not first:
+            raise ValueError("a header may only be the first line")
         return _parse_header(obj)
     raise ValueError(f"unknown line type {kind!r}; allowed: {', '.join(EVENT_TYPES)}")
 
@@ -145,9 +147,7 @@ def read_recording(path: str | Path, skip_bad: bool = False,
                 if not text.strip():
                     continue
                 try:
-                    event = parse_line(text)
-                    if isinstance(event, Header) and number != 1:
-                        raise ValueError("a header may only be the first line")
+                    event = parse_line(text, first=number == 1)
                     if isinstance(event, CountsEvent):
                         if last is not None and event.hour <= last:
                             raise ValueError(f"hour {format_hour(event.hour)} is not after the previous counts line")

@@ -1,0 +1,53 @@
+"""Small recordings made by the tests themselves (not the demo scenario)."""
+
+from __future__ import annotations
+
+import gzip
+import json
+from datetime import datetime, timedelta
+from pathlib import Path
+
+import numpy as np
+
+from alerter.timeaxis import format_hour
+
+START = datetime.fromisoformat("2026-11-02T07:00:00+00:00")
+
+
+def daily_counts(hours: int, level: float, seed: int) -> np.ndarray:
+    """Poisson counts with a daily rhythm (local-time rhythm approximated in UTC-7)."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(hours)
+    rate = level * (1.0 + 0.6 * np.sin(2 * np.pi * ((t - 7) % 24) / 24.0))
+    return rng.poisson(rate).astype(float)
+
+
+def write_recording(path: Path, series: dict[str, np.ndarray], surge: dict[str, tuple[int, float]] | None = None,
+                    edges: list[tuple[str, str]] = ()) -> Path:
+    """Write series (NaN = missing) as an alerter-recording/1 file; surge = {node: (hour, factor)}."""
+    hours = len(next(iter(series.values())))
+    lines = [{"type": "header", "format": "alerter-recording/1", "tz": "America/Denver",
+              "start": format_hour(START), "hours": hours}]
+    lines += [{"type": "edge_add", "ts": format_hour(START), "src": s, "dst": d} for s, d in edges]
+    for h in range(hours):
+        counts = {}
+        for node, values in series.items():
+            v = values[h]
+            if surge and node in surge and surge[node][0] == h:
+                v = v * surge[node][1]
+            if not np.isnan(v):
+                counts[node] = int(v)
+        lines.append({"type": "counts", "hour": format_hour(START + timedelta(hours=h)), "counts": counts})
+    text = "".join(json.dumps(line) + "\n" for line in lines)
+    if path.suffix == ".gz":
+        with gzip.open(path, "wt", encoding="utf-8") as handle:
+            handle.write(text)
+    else:
+        path.write_text(text, encoding="utf-8")
+    return path
+
+
+def small_recording(tmp_path: Path, name: str = "small.jsonl") -> Path:
+    """Three nodes, ten days; '/hot' surges x6 at hour 200."""
+    series = {"/": daily_counts(240, 800, 1), "/hot": daily_counts(240, 120, 2), "/cold": daily_counts(240, 60, 3)}
+    return write_recording(tmp_path / name, series, surge={"/hot": (200, 6.0)}, edges=[("/", "/hot")])
