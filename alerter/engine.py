@@ -119,7 +119,7 @@ class Engine:
         hour = format_hour(r.hour)
         out = []
         for kind, mask in (("surge", up), ("drop", down)):
-            for i in np.flatnonzero(mask):
+            for i in np.flatnonzero(mask).tolist():
                 out.append(Alert.build(
                     node=self.nodes.ids[i], hour=hour, kind=kind, observed=r.observed[i],
                     expected=r.expected[i], band_low=r.band_low[i], band_high=r.band_high[i],

@@ -23,7 +23,7 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
-from typing import Any, Union
+from typing import Any
 
 from .errors import RecordingError
 from .timeaxis import format_hour, parse_hour, parse_instant
@@ -57,7 +57,7 @@ class EdgeEvent:
     dst: str
 
 
-Event = Union[Header, CountsEvent, EdgeEvent]
+Event = Header | CountsEvent | EdgeEvent
 
 
 def open_text(path: Path) -> Any:
@@ -150,7 +150,8 @@ def read_recording(path: str | Path, skip_bad: bool = False,
                     event = parse_line(text, first=number == 1)
                     if isinstance(event, CountsEvent):
                         if last is not None and event.hour <= last:
-                            raise ValueError(f"hour {format_hour(event.hour)} is not after the previous counts line")
+                            hour = format_hour(event.hour)
+                            raise ValueError(f"hour {hour} is not after the previous counts line")
                         last = event.hour
                 except (ValueError, KeyError, TypeError) as exc:
                     error = RecordingError(str(path), number, str(exc))

@@ -12,8 +12,8 @@ import numpy as np
 from .config import Config
 from .engine import Engine, StepResult
 from .errors import RecordingError
-from .records import Alert, NodeHour
 from .recording import CountsEvent, EdgeEvent, Header, read_recording
+from .records import Alert, NodeHour
 from .timeaxis import format_hour
 
 __all__ = ["ReplayResult", "replay", "node_hour"]
