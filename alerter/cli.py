@@ -57,6 +57,13 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=20261102, help="random seed (default 20261102)")
     p.add_argument("--out", default="replay_data", metavar="DIR", help="output folder (default replay_data)")
     p.set_defaults(func=commands.cmd_scenario)
+
+    try:
+        from .live_cli import add_live_commands
+    except ImportError:  # the live path is optional until its module lands
+        pass
+    else:
+        add_live_commands(sub, _common)
     return parser
 
 
