@@ -13,7 +13,7 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
-__all__ = ["Alert", "NodeHour", "dumps", "write_jsonl"]
+__all__ = ["Alert", "NodeHour", "Upstream", "dumps", "write_jsonl"]
 
 
 def _r(value: float, digits: int = 3) -> float:
@@ -21,8 +21,27 @@ def _r(value: float, digits: int = 3) -> float:
 
 
 @dataclass(frozen=True)
+class Upstream:
+    """One upstream neighbour's estimated part in a node's excess (an estimate, not proof)."""
+
+    node: str
+    visits: float
+    share: float  # of the alerting node's excess, 0..1
+    link: str | None = None  # "new" or "removed" when the link changed recently
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+@dataclass(frozen=True)
 class Alert:
-    """One node beyond its forecast for one hour."""
+    """One node beyond its forecast for one hour.
+
+    ``upstream``, ``unexplained`` and ``origin`` are filled by the flow model:
+    the neighbours that most likely sent the excess, the part none of them explains, and
+    whether the surge is ``originating`` (mostly unexplained), ``propagated`` (mostly
+    explained by neighbours) or ``mixed``. All of it is estimated, not observed.
+    """
 
     node: str
     hour: str
@@ -36,15 +55,21 @@ class Alert:
     score: float
     rule: str
     streak: int
+    upstream: tuple[Upstream, ...] = ()
+    unexplained: float | None = None
+    origin: str | None = None
 
     @classmethod
     def build(cls, *, node: str, hour: str, kind: str, observed: float, expected: float,
-              band_low: float, band_high: float, score: float, rule: str, streak: int) -> Alert:
+              band_low: float, band_high: float, score: float, rule: str, streak: int,
+              upstream: tuple[Upstream, ...] = (), unexplained: float | None = None,
+              origin: str | None = None) -> Alert:
         return cls(
             node=node, hour=hour, kind=kind, observed=_r(observed, 1), expected=_r(expected, 1),
             band_low=_r(band_low, 1), band_high=_r(band_high, 1),
             excess=_r(observed - expected, 1), ratio=_r((observed + 1.0) / (expected + 1.0)),
-            score=_r(score, 2), rule=rule, streak=int(streak),
+            score=_r(score, 2), rule=rule, streak=int(streak), upstream=upstream,
+            unexplained=None if unexplained is None else _r(unexplained, 1), origin=origin,
         )
 
     def to_dict(self) -> dict[str, Any]:
