@@ -17,7 +17,7 @@ from __future__ import annotations
 import hashlib
 from collections.abc import Iterable
 from dataclasses import asdict, dataclass, field
-from enum import Enum
+from enum import StrEnum
 from typing import Any
 
 from .records import Alert
@@ -25,7 +25,7 @@ from .records import Alert
 __all__ = ["IncidentState", "Incident", "IncidentUpdate", "IncidentTracker"]
 
 
-class IncidentState(str, Enum):
+class IncidentState(StrEnum):
     OPEN = "open"
     GROWING = "growing"
     SUBSIDING = "subsiding"
