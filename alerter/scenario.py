@@ -291,11 +291,14 @@ def levels(changes: tuple[EdgeChange, ...] | list[EdgeChange], n: int) -> list[n
 
 
 def propagate(external: np.ndarray, matrices: list[sp.csr_matrix], bounds: list[int],
-              avail: np.ndarray, groups: list[np.ndarray]) -> np.ndarray:
+              avail: np.ndarray, groups: list[np.ndarray], rng: np.random.Generator | None = None) -> np.ndarray:
     """Human visits of every page and hour: external visits plus clicks in, level by level.
 
     ``matrices[k]`` holds the shares in force for hours ``bounds[k]..bounds[k+1]``. A page
-    that is down (``avail`` 0) gets no visits and so sends no clicks.
+    that is down (``avail`` 0) gets no visits and so sends no clicks. Without ``rng`` the
+    result is the expected visits; with it each level's counts are drawn before they send
+    clicks on, so a page's random ups and downs really reach the pages it links to (as
+    they do on a real site, and as a flow model needs in order to learn the shares).
     """
     visits = np.zeros_like(external)
     for k, matrix in enumerate(matrices):
@@ -303,18 +306,20 @@ def propagate(external: np.ndarray, matrices: list[sp.csr_matrix], bounds: list[
         into = matrix.T.tocsr()
         for nodes in groups:
             inflow = into[nodes] @ visits[:, cols]
-            visits[nodes, cols] = avail[nodes, cols] * (external[nodes, cols] + inflow)
+            rate = avail[nodes, cols] * (external[nodes, cols] + inflow)
+            visits[nodes, cols] = rate if rng is None else draw_counts(rng, rate)
     return visits
 
 
-def human_visits(changes: list[EdgeChange], external: np.ndarray, avail: np.ndarray) -> tuple[np.ndarray, float]:
+def human_visits(changes: list[EdgeChange], external: np.ndarray, avail: np.ndarray,
+                 rng: np.random.Generator | None = None) -> tuple[np.ndarray, float]:
     """Propagate over the stretches of hours with a fixed graph; also the largest out-share sum."""
     n, hours = external.shape
     cuts = sorted({0} | {ch.hour for ch in changes if 0 < ch.hour < hours})
     bounds = cuts + [hours]
     matrices = [share_matrix(changes, h, n) for h in cuts]
     out_max = max(float(np.asarray(m.sum(axis=1)).max()) for m in matrices)
-    return propagate(external, matrices, bounds, avail, levels(changes, n)), out_max
+    return propagate(external, matrices, bounds, avail, levels(changes, n), rng), out_max
 
 
 def draw_counts(rng: np.random.Generator, rate: np.ndarray) -> np.ndarray:
@@ -361,7 +366,8 @@ def generate(seed: int = DEFAULT_SEED, n_pages: int = 2000, n_new: int | None = 
     changes = sorted(list(site.changes) + plan.changes, key=lambda ch: ch.hour)
     human, out_max = human_visits(changes, external + plan.extra, plan.avail)
     labelled = events.label_events(plan.specs, ctx, human, stamps)
-    counts = draw_counts(noise_rng, human + plan.bots)
+    drawn, _ = human_visits(changes, external + plan.extra, plan.avail, rng=noise_rng)
+    counts = drawn.astype(np.int64) + noise_rng.poisson(plan.bots)
     lines = recording_lines(seed, site.pages, changes, counts, alive & ~plan.missing, stamps)
     labels = {"format": "alerter-labels/1", "site": SITE, "seed": seed, "labelled_from": stamps[WEEK3],
               "events": labelled}
