@@ -1,7 +1,17 @@
 """The engine: one call per closed hour, arrays in, alert records out, no I/O.
 
-Live service and replay drive this very object, so they cannot drift apart. The per-hour
-work is vectorised over all nodes: forecast, score, rule evaluation, then learning.
+Live service and replay drive this very object, so they cannot drift apart. Per hour, all
+vectorised over nodes and edges:
+
+1. seasonal baseline -> each node's own expected count ``b`` and residual scale;
+2. flow model -> joint forecast ``F = b + sum_j beta_ij * ehat_j`` (neighbours' persisted
+   excess through the learned link shares), before the hour is seen;
+3. rules compare the observed count with ``F`` and its band;
+4. the hour is learned (flows, then baseline); attribution made before learning names each
+   alert's upstream neighbours; a missing count is filled from neighbours and baseline
+   (marked imputed, never alerted on, not learned from);
+5. alerts linked by attribution are grouped into incidents; nodes downstream of an open
+   incident get a spill-over warning when their forecast crosses a configured capacity.
 """
 
 from __future__ import annotations
@@ -15,42 +25,50 @@ import numpy as np
 
 from .baseline import SeasonalBaseline
 from .config import Config
+from .flows import Attribution
+from .incidents import IncidentTracker, IncidentUpdate
+from .joint import JointModel
 from .nodes import NodeIndex
-from .records import Alert
+from .records import Alert, SpillWarning
 from .rules import RuleBook
-from .timeaxis import format_hour, hour_index, local_slots
+from .timeaxis import HOUR, format_hour, hour_index, local_slots
 
 __all__ = ["Engine", "StepResult"]
 
 
 @dataclass
 class StepResult:
-    """Everything the engine knew about one hour, as arrays over nodes plus alerts."""
+    """Everything the engine knew about one hour, as arrays over nodes plus records."""
 
     hour: datetime
     observed: np.ndarray  # counts, NaN where missing
-    expected: np.ndarray
+    expected: np.ndarray  # joint forecast F (own baseline when flows are off)
     band_low: np.ndarray
     band_high: np.ndarray
     score: np.ndarray  # signed residual in scales, NaN where missing
     warm: np.ndarray
     adopted: np.ndarray
+    own_expected: np.ndarray  # seasonal baseline b
+    imputed: np.ndarray  # filled value where the count is missing (NaN elsewhere)
     alerts: list[Alert] = field(default_factory=list)
+    incidents: list[IncidentUpdate] = field(default_factory=list)
+    spills: list[SpillWarning] = field(default_factory=list)
 
 
 class Engine:
-    """Seasonal baseline plus alert rules over an open-ended set of nodes.
+    """Seasonal baseline, neighbour flows and alert rules over an open-ended graph.
 
     >>> from datetime import timedelta
     >>> from alerter.config import Config
     >>> from alerter.timeaxis import parse_hour
     >>> eng = Engine(Config())
     >>> t0 = parse_hour("2026-11-02T07:00:00Z")
+    >>> eng.add_edge("/", "/quiet", t0)
     >>> for h in range(24 * 7):
     ...     res = eng.step(t0 + timedelta(hours=h), {"/": 1000.0, "/quiet": 50.0})
     >>> res = eng.step(t0 + timedelta(hours=24 * 7), {"/": 9000.0, "/quiet": 50.0})
-    >>> [(a.node, a.kind) for a in res.alerts]
-    [('/', 'surge')]
+    >>> [(a.node, a.kind, a.origin) for a in res.alerts]
+    [('/', 'surge', 'originating')]
     """
 
     def __init__(self, config: Config) -> None:
@@ -59,32 +77,47 @@ class Engine:
         self.nodes = NodeIndex()
         self.baseline = SeasonalBaseline(config.baseline)
         self.rules = RuleBook(config.rules)
-        self.edges: set[tuple[str, str]] = set()
+        self.joint = JointModel(self.nodes, config.flows, config.attribution, config.baseline.dtype)
+        inc = config.incidents
+        self.incidents = IncidentTracker(inc.link_min_share, inc.adjacent_hours, inc.quiet_hours)
+        self.prev_excess = np.zeros(0)
         self.last_hour: datetime | None = None
 
-    # -- graph events (kept for the flow model; the own-only engine does not use them) --
-    def add_edge(self, src: str, dst: str) -> None:
-        self._grow(self.nodes.intern([src, dst]))
-        self.edges.add((src, dst))
+    @property
+    def graph(self):  # noqa: ANN201 - the LinkGraph, for queries
+        return self.joint.graph
 
-    def remove_edge(self, src: str, dst: str) -> None:
-        self.edges.discard((src, dst))
+    # -- graph events --------------------------------------------------------------------
+    def _tick_for(self, ts: datetime | None) -> int:
+        if ts is not None:
+            return hour_index(ts)
+        return hour_index(self.last_hour) + 1 if self.last_hour is not None else 0
 
-    # -- hours -------------------------------------------------------------------------
-    def _grow(self, idx: np.ndarray) -> None:
+    def add_edge(self, src: str, dst: str, ts: datetime | None = None) -> None:
+        """A link appears; it takes effect from the next closed hour."""
+        self.joint.add_edge(src, dst, self._tick_for(ts))
+        self._grow()
+
+    def remove_edge(self, src: str, dst: str, ts: datetime | None = None) -> bool:
+        """A link disappears; False when there was no such link."""
+        return self.joint.remove_edge(src, dst, self._tick_for(ts))
+
+    # -- hours ---------------------------------------------------------------------------
+    def _grow(self) -> None:
         n = len(self.nodes)
         if n > self.rules.n:
             self.rules.add_nodes(self.nodes.ids[self.rules.n:])
             self.baseline.resize(n)
+            grown = np.zeros(n)
+            grown[: self.prev_excess.shape[0]] = self.prev_excess
+            self.prev_excess = grown
 
     def counts_array(self, counts: Mapping[str, float | None]) -> np.ndarray:
         """Dense counts over all nodes (NaN where missing), interning new ids."""
-        ids = list(counts)
-        idx = self.nodes.intern(ids)
-        self._grow(idx)
+        idx = self.nodes.intern(list(counts))
+        self._grow()
         x = np.full(len(self.nodes), np.nan)
-        values = np.array([np.nan if v is None else v for v in counts.values()], dtype=float)
-        x[idx] = values
+        x[idx] = np.array([np.nan if v is None else v for v in counts.values()], dtype=float)
         return x
 
     def step(self, hour: datetime, counts: Mapping[str, float | None]) -> StepResult:
@@ -96,35 +129,84 @@ class Engine:
         if self.last_hour is not None and hour <= self.last_hour:
             raise ValueError(f"hour {format_hour(hour)} is not after {format_hour(self.last_hour)}")
         slot, day = local_slots(hour, self.tz)
-        b = self.baseline
-        y = b.to_working(x)
-        yhat = b.forecast(slot, day).astype(float)
-        sd = b.scale().astype(float)
-        observed = ~np.isnan(x)
-        warm = b.warm() & observed
-        with np.errstate(invalid="ignore"):
-            score = (y - yhat) / sd
-        expected = np.maximum(b.from_working(yhat), 0.0)
-        low = np.maximum(b.from_working(yhat - self.rules.z("drop") * sd), 0.0)
-        high = b.from_working(yhat + self.rules.z("surge") * sd)
         tick = hour_index(hour)
-        up, down = self.rules.evaluate(x, expected, score, warm, tick)
-        adopted = b.update(y, slot, day)
-        result = StepResult(hour, x, expected, low, high, score, warm, adopted)
-        result.alerts = self._alerts(result, up, down)
+        b_model = self.baseline
+        y = b_model.to_working(x)
+        sd = b_model.scale().astype(float)
+        own = np.maximum(b_model.from_working(b_model.forecast(slot, day).astype(float)), 0.0)
+        flows_on = self.config.flows.enabled
+        joint = own + self.joint.forecast(self.prev_excess, tick) if flows_on else own.copy()
+        np.maximum(joint, 0.0, out=joint)
+        y_joint = b_model.to_working(joint).astype(float)
+        observed = ~np.isnan(x)
+        warm = b_model.warm() & observed
+        with np.errstate(invalid="ignore"):
+            score = (y - y_joint) / sd
+        low = np.maximum(b_model.from_working(y_joint - self.rules.z("drop") * sd), 0.0)
+        high = b_model.from_working(y_joint + self.rules.z("surge") * sd)
+        up, down = self.rules.evaluate(x, joint, score, warm, tick)
+        attribution = self.joint.observe(x, own, tick) if flows_on else None
+        imputed = self._impute(x, own, attribution)
+        adopted = b_model.update(y, slot, day)
+        self.prev_excess = np.where(observed, x - own, 0.0)
+        result = StepResult(hour, x, joint, low, high, score, warm, adopted, own, imputed)
+        result.alerts = self._alerts(result, up, down, attribution, tick)
+        active = {(self.nodes.ids[i], d) for d in ("surge", "drop")
+                  for i in np.flatnonzero(self.rules.active[d]).tolist()}
+        result.incidents = self.incidents.step(tick, format_hour(hour), result.alerts, active)
+        if flows_on and self.config.incidents.capacity and self.incidents.open:
+            result.spills = self._spills(hour, tick)
         self.last_hour = hour
         return result
 
-    def _alerts(self, r: StepResult, up: np.ndarray, down: np.ndarray) -> list[Alert]:
+    def _impute(self, x: np.ndarray, own: np.ndarray, attribution: Attribution | None) -> np.ndarray:
+        """Fill missing counts of known nodes: own baseline plus neighbours' inflow."""
+        out = np.full(x.shape, np.nan)
+        gap = np.isnan(x) & (self.baseline.state.seen > 0)
+        if gap.any():
+            fill = own if attribution is None else own + self.joint.inflow(attribution)
+            out[gap] = np.maximum(fill[gap], 0.0)
+        return out
+
+    def _alerts(self, r: StepResult, up: np.ndarray, down: np.ndarray,
+                attribution: Attribution | None, tick: int) -> list[Alert]:
         hour = format_hour(r.hour)
         out = []
         for kind, mask in (("surge", up), ("drop", down)):
             for i in np.flatnonzero(mask).tolist():
+                upstream, unexplained, origin = (), None, None
+                if attribution is not None:
+                    own_excess = float(r.observed[i] - r.own_expected[i])
+                    upstream, unexplained = self.joint.upstream(i, attribution, r.own_expected,
+                                                                own_excess, tick)
+                    origin = self.joint.origin(unexplained, own_excess)
                 out.append(Alert.build(
                     node=self.nodes.ids[i], hour=hour, kind=kind, observed=r.observed[i],
                     expected=r.expected[i], band_low=r.band_low[i], band_high=r.band_high[i],
                     score=r.score[i], rule=self.rules.rule_name(kind, i),
-                    streak=self.rules.streak(kind, i),
+                    streak=self.rules.streak(kind, i), upstream=upstream, unexplained=unexplained,
+                    origin=origin,
                 ))
         out.sort(key=lambda a: (a.kind, a.node))
         return out
+
+    def _spills(self, hour: datetime, tick: int) -> list[SpillWarning]:
+        """Downstream nodes of open surge incidents whose next-hour forecast crosses capacity."""
+        nxt = hour + HOUR
+        slot, day = local_slots(nxt, self.tz)
+        b_next = np.maximum(self.baseline.from_working(self.baseline.forecast(slot, day).astype(float)), 0.0)
+        load = b_next + self.joint.forecast(self.prev_excess, tick + 1)
+        rules = self.config.incidents.capacity
+        out = []
+        for inc in self.incidents.open.values():
+            if inc.direction != "surge":
+                continue
+            for member in sorted(inc.members):
+                for node in self.graph.neighbours(member, "down"):
+                    cap = next((r.visits_per_hour for r in rules if r.matches(node)), None)
+                    value = float(load[self.nodes.get(node)])
+                    if cap is not None and value > cap and node not in inc.members:
+                        out.append(SpillWarning(node, format_hour(nxt), round(value, 1), cap, inc.id, member))
+        unique = {(w.node, w.incident): w for w in out}
+        return sorted(unique.values(), key=lambda w: (w.incident, w.node))
+

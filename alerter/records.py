@@ -13,7 +13,7 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
-__all__ = ["Alert", "NodeHour", "Upstream", "dumps", "write_jsonl"]
+__all__ = ["Alert", "NodeHour", "SpillWarning", "Upstream", "dumps", "write_jsonl"]
 
 
 def _r(value: float, digits: int = 3) -> float:
@@ -77,6 +77,21 @@ class Alert:
 
 
 @dataclass(frozen=True)
+class SpillWarning:
+    """A node downstream of an open incident whose forecast load crosses its capacity."""
+
+    node: str
+    hour: str  # the hour the forecast is for
+    forecast: float
+    capacity: float
+    incident: str
+    via: str  # the incident member that links to it
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+@dataclass(frozen=True)
 class NodeHour:
     """What the engine saw and expected for one node in one hour (for ``explain``)."""
 
@@ -89,6 +104,9 @@ class NodeHour:
     warm: bool
     adopted: bool
     alert: str | None
+    own_expected: float | None = None
+    neighbours: float | None = None
+    imputed: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)

@@ -13,7 +13,8 @@ from .config import Config
 from .engine import Engine, StepResult
 from .errors import RecordingError
 from .recording import CountsEvent, EdgeEvent, Header, read_recording
-from .records import Alert, NodeHour
+from .incidents import IncidentUpdate
+from .records import Alert, NodeHour, SpillWarning
 from .timeaxis import format_hour
 
 __all__ = ["ReplayResult", "replay", "node_hour"]
@@ -24,6 +25,8 @@ class ReplayResult:
     """Alerts of a whole recording, plus what was watched along the way."""
 
     alerts: list[Alert] = field(default_factory=list)
+    incidents: list[IncidentUpdate] = field(default_factory=list)
+    spills: list[SpillWarning] = field(default_factory=list)
     hours: list[datetime] = field(default_factory=list)
     header: Header | None = None
     bad_lines: list[RecordingError] = field(default_factory=list)
@@ -39,6 +42,7 @@ def node_hour(result: StepResult, i: int, alert: str | None) -> NodeHour:
     """The ``explain`` view of node ``i`` in one step."""
     x = result.observed[i] if i < result.observed.shape[0] else np.nan
     score = result.score[i]
+    imputed = result.imputed[i]
     return NodeHour(
         hour=format_hour(result.hour),
         observed=None if np.isnan(x) else float(x),
@@ -49,6 +53,9 @@ def node_hour(result: StepResult, i: int, alert: str | None) -> NodeHour:
         warm=bool(result.warm[i]),
         adopted=bool(result.adopted[i]),
         alert=alert,
+        own_expected=round(float(result.own_expected[i]), 2),
+        neighbours=round(float(result.expected[i] - result.own_expected[i]), 2),
+        imputed=None if np.isnan(imputed) else round(float(imputed), 2),
     )
 
 
@@ -72,10 +79,12 @@ def replay(path: str | Path, config: Config, *, skip_bad: bool = False,
         if isinstance(event, Header):
             out.header = event
         elif isinstance(event, EdgeEvent):
-            (engine.add_edge if event.op == "add" else engine.remove_edge)(event.src, event.dst)
+            (engine.add_edge if event.op == "add" else engine.remove_edge)(event.src, event.dst, event.ts)
         elif isinstance(event, CountsEvent):
             result = engine.step(event.hour, event.counts)
             out.alerts.extend(result.alerts)
+            out.incidents.extend(result.incidents)
+            out.spills.extend(result.spills)
             out.hours.append(event.hour)
             if watch:
                 _watch(result, engine, watch, out.trace)

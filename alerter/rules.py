@@ -74,6 +74,7 @@ class RuleBook:
         self.settings = settings
         self.rule_names = ["default"] + [o.name for o in settings.overrides]
         self.by_direction = {d: _Thresholds.empty() for d in DIRECTIONS}
+        self.active: dict[str, np.ndarray] = {d: np.zeros(0, bool) for d in DIRECTIONS}
 
     @property
     def n(self) -> int:
@@ -121,6 +122,7 @@ class RuleBook:
         t = self.by_direction[direction]
         cond = eligible & t.enabled & (score >= t.z) & (excess >= t.min_excess)
         cond &= (ratio >= t.min_ratio) & (expected >= t.min_expected)
+        self.active[direction] = cond
         t.streak = np.where(cond, t.streak + 1, 0).astype(np.int32)
         fire = cond & (t.streak >= t.persistence) & (tick >= t.quiet_until)
         t.quiet_until = np.where(fire, tick + t.cooldown_hours, t.quiet_until)

@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import LabelsError
+from .incidents import IncidentUpdate
 from .records import Alert
 from .timeaxis import parse_hour
 
@@ -86,12 +87,20 @@ def _ratio(num: float, den: float) -> float:
     return round(num / den, 4) if den else float("nan")
 
 
-def score_alerts(alerts: list[Alert], labels: Labels, slack_hours: int = 3) -> Score:
-    """Precision per alert direction and recall per event kind and node role."""
+def score_alerts(alerts: list[Alert], labels: Labels, slack_hours: int = 3,
+                 incidents: list[IncidentUpdate] | None = None) -> Score:
+    """Precision per alert direction, recall per event kind and node role, root naming.
+
+    ``root_named_rate``: of the alerts that caught a propagated node of an event, the share
+    whose top-named upstream neighbour is the event's root (NaN when the alerts carry no
+    attribution). With ``incidents``, ``incidents_per_event`` compares the number of
+    incidents opened in the labelled period with the number of events that expect alerts.
+    """
     slack = timedelta(hours=slack_hours)
     scored = [a for a in alerts if parse_hour(a.hour) >= labels.labelled_from]
     wanted = [e for e in labels.events if e.alert_expected]
     hits: dict[str, set[str]] = {e.id: set() for e in wanted}
+    named: list[bool] = []
     out = Score()
     for direction in ("surge", "drop"):
         mine = [a for a in scored if a.kind == direction]
@@ -100,6 +109,8 @@ def score_alerts(alerts: list[Alert], labels: Labels, slack_hours: int = 3) -> S
             matched = [e for e in wanted if _matches(a, e, slack)]
             for e in matched:
                 hits[e.id].add(a.node)
+                if e.nodes.get(a.node) == "propagated" and a.origin is not None:
+                    named.append(bool(a.upstream) and a.upstream[0].node == e.root)
             good += bool(matched)
         out.precision[direction] = {"alerts": len(mine), "true": good, "precision": _ratio(good, len(mine))}
     for kind in sorted({e.kind for e in wanted}):
@@ -107,6 +118,11 @@ def score_alerts(alerts: list[Alert], labels: Labels, slack_hours: int = 3) -> S
         found = sum(bool(hits[e.id]) for e in events)
         out.recall[kind] = {"events": len(events), "detected": found, "recall": _ratio(found, len(events))}
     out.summary = _summary(wanted, hits, out)
+    out.summary["root_named_rate"] = _ratio(sum(named), len(named))
+    if incidents is not None:
+        opened = {u.incident for u in incidents if parse_hour(u.hour) >= labels.labelled_from}
+        out.summary["incidents"] = float(len(opened))
+        out.summary["incidents_per_event"] = _ratio(len(opened), len(wanted))
     return out
 
 

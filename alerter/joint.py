@@ -1,0 +1,201 @@
+"""The graph half of the engine: live links, learned flows, joint forecast and attribution.
+
+Holds the live :class:`~alerter.graph.LinkGraph` and the :class:`~alerter.flows.FlowLearner`
+whose edge list mirrors the graph's destination-sorted CSR (so the in-edges of node ``i``
+are learner positions ``indptr[i]:indptr[i+1]``). Per closed hour it gives
+
+- the neighbour part of the joint forecast ``F_i = b_i + sum_j beta_ij * ehat_j`` (before
+  the hour is seen, from each source's persisted excess);
+- after the hour is seen, per-edge contributions to each node's excess over its own
+  baseline, capped so they never explain more than that excess, which name the upstream
+  neighbours of an alert and fill a node whose count is missing.
+
+A removed link is remembered for ``removed_memory_hours``: the normal inflow it used to
+bring (its coefficient times the source's baseline, weighted by how far the target's
+baseline had absorbed it) is offered as a cause of a drop at its former target.
+
+Everything here is an estimate from past co-movement of counts; it does not prove cause.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .config import AttributionSettings, FlowConfig
+from .flows import Attribution, FlowLearner, FlowSettings, persistence_forecast, sum_by
+from .graph import LinkGraph
+from .nodes import NodeIndex
+from .records import Upstream
+
+__all__ = ["JointModel", "Removed", "flow_settings"]
+
+
+def flow_settings(cfg: FlowConfig, dtype: str) -> FlowSettings:
+    """The learner's settings from the YAML subset (the rest keep their defaults)."""
+    return FlowSettings(lags=cfg.lags, own_lag=cfg.own_lag, forgetting=cfg.forgetting, step=cfg.step,
+                        beta_max=cfg.beta_max, cap=cfg.cap, prior=cfg.prior,
+                        age_tau_hours=cfg.age_tau_hours, dtype=dtype)
+
+
+@dataclass(frozen=True)
+class Removed:
+    """A link removed recently, kept to explain a drop at its former target."""
+
+    src: int
+    dst: int
+    beta: float
+    absorbed: float  # a_e at removal: the part of its inflow the target's baseline held
+    tick: int
+
+
+class JointModel:
+    """Live graph plus flow learner; all per-hour work is array operations over edges."""
+
+    def __init__(self, nodes: NodeIndex, flows: FlowConfig, attribution: AttributionSettings,
+                 dtype: str = "float32") -> None:
+        self.nodes = nodes
+        self.cfg = flows
+        self.attr = attribution
+        self.graph = LinkGraph(nodes)
+        self.learner = FlowLearner(flow_settings(flows, dtype))
+        self.removed: list[Removed] = []
+        self._synced = -1
+        self.indptr = np.zeros(1, np.int64)
+        self.born = np.zeros(0, np.int64)
+
+    # -- structure ---------------------------------------------------------------------
+    def add_edge(self, src: str, dst: str, tick: int) -> None:
+        self.graph.add_edge(src, dst, hour=tick)
+
+    def remove_edge(self, src: str, dst: str, tick: int) -> bool:
+        """Remove a link, remembering the normal inflow it carried; False if unknown."""
+        if src not in self.nodes or dst not in self.nodes:
+            return False
+        s, d = self.nodes.get(src), self.nodes.get(dst)
+        pos = self._position(s, d)
+        if self.graph.remove_edge(src, dst) is None:
+            return False
+        if pos is not None:
+            beta = float(self.learner.coefficients[0, pos])
+            age = float(tick - self.born[pos])
+            absorbed = 1.0 - float(np.exp(-max(age, 0.0) / self.cfg.age_tau_hours))
+            self.removed.append(Removed(s, d, beta, absorbed, tick))
+        return True
+
+    def _position(self, s: int, d: int) -> int | None:
+        """Learner position of edge s -> d as of the last sync (scan of d's in-edges only)."""
+        if d + 1 >= len(self.indptr):
+            return None
+        lo, hi = int(self.indptr[d]), int(self.indptr[d + 1])
+        hit = np.flatnonzero(self.learner.state.src[lo:hi] == s)
+        return lo + int(hit[0]) if hit.size else None
+
+    def sync(self) -> None:
+        """Mirror the graph's CSR in the learner when links or nodes changed.
+
+        Kept edges keep their coefficients (matched by (src, dst)); new ones start at the
+        prior. Costs one pass over the edges, only in hours whose structure changed.
+        """
+        n = len(self.nodes)
+        key = (self.graph.version, n)
+        if key == self._synced:
+            return
+        csr = self.graph.csr()
+        self.learner.resize(n, csr.src_sorted, csr.dst_sorted)
+        self.indptr = np.asarray(csr.indptr, np.int64)
+        self.born = self.graph.born[csr.order]
+        self._synced = key  # type: ignore[assignment]
+
+    def ages(self, tick: int) -> np.ndarray:
+        return (tick - self.born).astype(np.float64)
+
+    # -- per hour ----------------------------------------------------------------------
+    def forecast(self, prev_excess: np.ndarray, tick: int) -> np.ndarray:
+        """Neighbour part of this hour's joint forecast (counts), before the hour is seen.
+
+        ``sum_j beta_ij * ehat_j`` with ``ehat_j`` the source's persisted excess. A new link's
+        not-yet-absorbed normal inflow is left out on purpose: the traffic a new link brings
+        is news the on-call engineer should get as an alert, explained by attribution.
+        """
+        self.sync()
+        ehat = persistence_forecast(prev_excess, self.cfg.excess_decay)
+        return self.learner.forecast(ehat, np.zeros_like(ehat), self.ages(tick))
+
+    def observe(self, x: np.ndarray, b: np.ndarray, tick: int) -> Attribution:
+        """Learn the seen hour; return the attribution made before learning from it."""
+        self.sync()
+        step = self.learner.observe(x, b, self.ages(tick))
+        self.removed = [r for r in self.removed if tick - r.tick <= self.attr.removed_memory_hours]
+        return step.attribution
+
+    def inflow(self, attribution: Attribution) -> np.ndarray:
+        """Per node, the signed sum of its neighbours' contributions (for imputation)."""
+        st = self.learner.state
+        return sum_by(st.dst, attribution.raw, st.n_nodes)
+
+    # -- explaining one node -----------------------------------------------------------
+    def upstream(self, i: int, attribution: Attribution, b: np.ndarray, own_excess: float,
+                 tick: int) -> tuple[tuple[Upstream, ...], float]:
+        """Top upstream neighbours of node ``i`` and the unexplained part of its excess.
+
+        Shares are of the excess over the node's own seasonal baseline; they sum to <= 1.
+        """
+        lo, hi = (int(self.indptr[i]), int(self.indptr[i + 1])) if i + 1 < len(self.indptr) else (0, 0)
+        src = self.learner.state.src[lo:hi]
+        visits = attribution.capped[lo:hi].astype(float)
+        links: list[str | None] = ["new" if tick - t < self.attr.new_link_hours else None
+                                   for t in self.born[lo:hi].tolist()]
+        if own_excess < 0:
+            src, visits, links = self._with_removed(i, src, visits, links, b, tick)
+        target = abs(own_excess)
+        total = float(visits.sum())
+        if total > target > 0:
+            visits = visits * (target / total)
+        order = np.lexsort((src, -visits))
+        picked = []
+        for k in order[: self.attr.top].tolist():
+            share = visits[k] / target if target > 0 else 0.0
+            if share < self.attr.min_share:
+                break
+            picked.append(Upstream(self.nodes.ids[int(src[k])], round(float(visits[k]), 1),
+                                   round(float(share), 3), links[k]))
+        unexplained = max(target - float(visits.sum()), 0.0)
+        return tuple(picked), unexplained * (1.0 if own_excess >= 0 else -1.0)
+
+    def _with_removed(self, i: int, src: np.ndarray, visits: np.ndarray, links: list[str | None],
+                      b: np.ndarray, tick: int) -> tuple[np.ndarray, np.ndarray, list[str | None]]:
+        ghosts = [r for r in self.removed if r.dst == i]
+        if not ghosts:
+            return src, visits, links
+        lost = np.array([r.beta * max(r.absorbed, 1e-3) * max(float(b[r.src]), 0.0) for r in ghosts])
+        return (np.concatenate([src, np.array([r.src for r in ghosts])]),
+                np.concatenate([visits, lost]), links + ["removed"] * len(ghosts))
+
+    def origin(self, unexplained: float, own_excess: float) -> str:
+        """originating / propagated / mixed, from the unexplained share of the excess."""
+        if own_excess == 0:
+            return "originating"
+        part = abs(unexplained) / abs(own_excess)
+        if part >= self.attr.originating_above:
+            return "originating"
+        if part <= self.attr.propagated_below:
+            return "propagated"
+        return "mixed"
+
+    def coefficient_table(self, i: int, direction: str, tick: int) -> list[tuple[str, float, int]]:
+        """(neighbour, lag-0 coefficient, link age in hours) of node ``i``'s in- or out-links."""
+        st = self.learner.state
+        if direction == "up":
+            lo, hi = int(self.indptr[i]), int(self.indptr[i + 1])
+            pos = np.arange(lo, hi)
+            other = st.src[pos]
+        else:
+            pos = np.flatnonzero(st.src == i)
+            other = st.dst[pos]
+        beta = self.learner.coefficients[0, pos]
+        rows = [(self.nodes.ids[int(o)], round(float(bv), 4), int(a)) for o, bv, a in
+                zip(other.tolist(), beta.tolist(), (tick - self.born[pos]).tolist(), strict=True)]
+        return sorted(rows, key=lambda r: (-r[1], r[0]))
+
