@@ -15,6 +15,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 
+from . import constants
 from .errors import ConfigError
 
 DEFAULT_CONFIG = Path(__file__).resolve().parent.parent / "config" / "default.yaml"
@@ -102,8 +103,53 @@ class RuleSettings(_Strict):
     """Surge and drop rules; the first matching override wins for a node."""
 
     surge: DirectionRule = DirectionRule()
-    drop: DirectionRule = DirectionRule(min_excess=20.0, min_ratio=1.5, min_expected=20.0)
+    drop: DirectionRule = DirectionRule(z=5.0, min_excess=20.0, min_ratio=1.5, min_expected=20.0)
     overrides: list[RuleOverride] = []
+
+
+class FlowConfig(_Strict):
+    """Neighbour-flow learner (see alerter/flows.py for the model); the tunable subset."""
+
+    enabled: bool = True
+    lags: int = Field(0, ge=0, le=24)
+    own_lag: bool = False
+    forgetting: bool = True
+    step: float = Field(0.05, gt=0, le=1)
+    beta_max: float = Field(1.0, gt=0)
+    cap: float | None = Field(1.0, ge=0)
+    prior: float = Field(0.01, ge=0)
+    age_tau_hours: float = Field(168.0, gt=0)
+    excess_decay: float = Field(0.5, ge=0, le=1)
+
+
+class AttributionSettings(_Strict):
+    """How alerts name upstream neighbours and what kind of surge they call it."""
+
+    top: int = Field(3, ge=1, le=50)
+    min_share: float = Field(0.05, ge=0, le=1)
+    originating_above: float = Field(0.6, ge=0, le=1)
+    propagated_below: float = Field(0.3, ge=0, le=1)
+    removed_memory_hours: int = Field(24, ge=0, le=24 * 30)
+    new_link_hours: int = Field(48, ge=0, le=24 * 30)
+
+
+class CapacityRule(_Strict):
+    """The hourly load a group of nodes can take before a spill-over warning."""
+
+    match: list[str] = Field(min_length=1)
+    visits_per_hour: float = Field(gt=0)
+
+    def matches(self, node: str) -> bool:
+        return any(fnmatch.fnmatchcase(node, pattern) for pattern in self.match)
+
+
+class IncidentSettings(_Strict):
+    """Grouping alerts into incidents and closing them."""
+
+    link_min_share: float = Field(0.2, ge=0, le=1)
+    adjacent_hours: int = Field(1, ge=0, le=24)
+    quiet_hours: int = Field(3, ge=1, le=168)
+    capacity: list[CapacityRule] = []
 
 
 class ScoringSettings(_Strict):
@@ -112,13 +158,65 @@ class ScoringSettings(_Strict):
     slack_hours: int = Field(3, ge=0, le=48)
 
 
+class LiveNames(_Strict):
+    """Redis names of the live path; ``#`` is the partition, ``@`` the hour (see constants)."""
+
+    input: str = Field(constants.INPUT_STREAM, min_length=1)
+    outbox: str = Field(constants.OUTBOX_STREAM, min_length=1)
+    dead_letter: str = Field(constants.DEAD_LETTER_STREAM, min_length=1)
+    late: str = Field(constants.LATE_STREAM, min_length=1)
+    checkpoint: str = Field(constants.CHECKPOINT_KEY, min_length=1)
+    group: str = Field(constants.GROUP, min_length=1)
+    barrier: str = Field(constants.BARRIER_KEY, min_length=1)
+    barrier_done: str = Field(constants.BARRIER_DONE_KEY, min_length=1)
+
+
+class LiveRetry(_Strict):
+    """Backoff while Redis is unreachable: doubles from ``initial_seconds`` up to ``max_seconds``."""
+
+    initial_seconds: float = Field(0.5, gt=0)
+    max_seconds: float = Field(30.0, gt=0)
+
+
+class LiveSettings(_Strict):
+    """The live path: Redis server, stream names, hour closing, recovery and limits."""
+
+    redis_url: str | None = None
+    password_env: str = Field("ALERTER_REDIS_PASSWORD", min_length=1)
+    embedded_dir: str = Field("var/redis", min_length=1)
+    consumer: str = Field(constants.CONSUMER, min_length=1)
+    partitions: int = Field(1, ge=1, le=1024)
+    grace_seconds: float = Field(300.0, ge=0, le=86400)
+    claim_idle_seconds: float = Field(60.0, gt=0)
+    read_count: int = Field(200, ge=1, le=100000)
+    block_ms: int = Field(1000, ge=1, le=60000)
+    batch_size: int = Field(20000, ge=1, le=1000000)
+    max_entry_bytes: int = Field(16 * 1024 * 1024, ge=1024, le=512 * 1024 * 1024)
+    retry: LiveRetry = LiveRetry()
+    names: LiveNames = LiveNames()
+
+    @field_validator("redis_url")
+    @classmethod
+    def _known_scheme(cls, value: str | None) -> str | None:
+        if value is not None and not value.startswith(("redis://", "rediss://", "unix://")):
+            raise ValueError(
+                "a Redis URL starts with redis://, rediss:// (TLS) or unix://, e.g. "
+                "redis://localhost:6379/0; leave it null to use the embedded server"
+            )
+        return value
+
+
 class Config(_Strict):
     """The whole configuration."""
 
     clock: ClockSettings = ClockSettings()
     baseline: BaselineSettings = BaselineSettings()
     rules: RuleSettings = RuleSettings()
+    flows: FlowConfig = FlowConfig()
+    attribution: AttributionSettings = AttributionSettings()
+    incidents: IncidentSettings = IncidentSettings()
     scoring: ScoringSettings = ScoringSettings()
+    live: LiveSettings = LiveSettings()
 
 
 # --- loading with line numbers -------------------------------------------------------

@@ -10,7 +10,12 @@ exceptions (JSON, OS, Redis, HTTP) are translated at the boundary with ``raise .
     ├── RecordingError            a recording line is malformed (file, line number, reason)
     ├── LabelsError               a labels file is malformed
     ├── UnknownNodeError          a node id that the stream never mentioned
-    └── HourRangeError            an hour outside the recording's span
+    ├── HourRangeError            an hour outside the recording's span
+    ├── BadEntryError             a stream entry that cannot be decoded (goes to dead letters)
+    ├── CheckpointError           a checkpoint that cannot be read back (wrong version, corrupt)
+    └── StoreError                Redis failed: the command, the server (redacted), the fix
+        ├── StoreUnavailableError Redis unreachable (connection refused, timeout, TLS)
+        └── ServerSetupError      no embedded or local redis-server could be started
 """
 
 from __future__ import annotations
@@ -53,3 +58,27 @@ class UnknownNodeError(AlerterError):
 
 class HourRangeError(AlerterError):
     """An hour outside the span of the recording."""
+
+
+class BadEntryError(AlerterError):
+    """A stream entry that cannot be decoded; ``reason`` says what is wrong with it."""
+
+    def __init__(self, reason: str) -> None:
+        self.reason = reason
+        super().__init__(reason)
+
+
+class CheckpointError(AlerterError):
+    """A stored checkpoint cannot be used (written by another version, or corrupt)."""
+
+
+class StoreError(AlerterError):
+    """A Redis command failed; the message names the command, the server and the fix."""
+
+
+class StoreUnavailableError(StoreError):
+    """The Redis server cannot be reached (refused, timed out, TLS or auth failure)."""
+
+
+class ServerSetupError(StoreError):
+    """No Redis server could be started or found; the message says how to get one."""

@@ -81,4 +81,4 @@ def test_overrides_apply_first_match() -> None:
     book.add_nodes(["/sports/a1", "/news/b2"])
     assert book.z("surge").tolist() == [7.0, 2.0]
     assert book.rule_name("surge", 0) == "surge:sports" and book.rule_name("surge", 1) == "surge:all"
-    assert book.z("drop").tolist() == [4.0, 4.0]
+    assert book.z("drop").tolist() == [5.0, 5.0]

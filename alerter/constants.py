@@ -1,0 +1,98 @@
+"""Every Redis stream, group and key name of the live path, and its lifecycle states.
+
+Names are templates: ``#`` stands for the partition number. The part between braces is a
+Redis Cluster hash tag (``{p3}``), so every key of one partition (its input stream, its
+outbox, its dead letters, its checkpoint) hashes to the same slot and a MULTI/EXEC over
+them is allowed on a cluster. All of them can be overridden in YAML (``live.names``).
+"""
+
+from __future__ import annotations
+
+from enum import StrEnum
+
+__all__ = [
+    "PARTITION_MARK", "INPUT_STREAM", "OUTBOX_STREAM", "DEAD_LETTER_STREAM", "LATE_STREAM",
+    "CHECKPOINT_KEY", "GROUP", "CONSUMER", "BARRIER_KEY", "BARRIER_DONE_KEY", "WIRE_VERSION",
+    "EntryType", "Encoding", "ServiceState", "partition_name",
+]
+
+# Placeholder in a name template replaced by the partition number (0 .. P-1).
+PARTITION_MARK = "#"
+
+# Counts and edge events of one partition arrive here; one stream per partition so that a
+# worker owning a partition reads only its nodes, and stream order is the order the
+# producer meant (edge events take effect for the counts that follow them).
+INPUT_STREAM = "alerter:{p#}:in"
+
+# One entry per alert, written in the same MULTI/EXEC as the checkpoint, so an alert is
+# published exactly when the engine state that produced it is durable (the outbox pattern).
+OUTBOX_STREAM = "alerter:{p#}:outbox"
+
+# Entries that could not be parsed or validated, with the reason and the original fields;
+# bad input must never stop the stream nor vanish silently.
+DEAD_LETTER_STREAM = "alerter:{p#}:dead"
+
+# Counts that arrived for an hour already closed: kept for the record, never re-applied
+# (the engine cannot step an hour twice) and never silently dropped.
+LATE_STREAM = "alerter:{p#}:late"
+
+# Pickled engine state, open hour buckets and the last applied entry id, replaced
+# atomically with SET inside the close transaction; a Redis key (not a file) so that it
+# commits together with the outbox entries of the same hour.
+CHECKPOINT_KEY = "alerter:{p#}:checkpoint"
+
+# The consumer group of the service; one group so that W workers share the partitions and
+# XAUTOCLAIM can hand a dead worker's pending entries to a live one.
+GROUP = "alerter-service"
+
+# Default consumer name inside the group; stable across restarts so a restarted worker
+# finds its own pending entries again (XREADGROUP ... 0).
+CONSUMER = "worker-1"
+
+# Per-hour barrier: a hash of partition -> packed excess of that partition's nodes, so each
+# worker can read the neighbour excesses it needs once every partition has closed the hour.
+# ``@`` stands for the hour (UTC, compact form); the tag keeps one hour's keys together.
+BARRIER_KEY = "alerter:{h@}:excess"
+
+# Set of partitions that have published their excess for the hour (the barrier count).
+BARRIER_DONE_KEY = "alerter:{h@}:done"
+
+# Version tag written in every entry (field ``v``) so a reader can refuse what it does
+# not understand instead of guessing.
+WIRE_VERSION = "1"
+
+
+class EntryType(StrEnum):
+    """The ``type`` field of an input entry."""
+
+    COUNT = "count"
+    BATCH = "batch"
+    EDGE_ADD = "edge_add"
+    EDGE_REMOVE = "edge_remove"
+
+
+class Encoding(StrEnum):
+    """How a batch entry packs its counts (field ``enc``)."""
+
+    JSON = "json"  # nodes: JSON array of ids; counts: JSON array of numbers or null
+    F64 = "f64"  # nodes: ids joined by "\n" (UTF-8); counts: little-endian float64, NaN = missing
+
+
+class ServiceState(StrEnum):
+    """Lifecycle of the service loop, logged on every change."""
+
+    STARTING = "starting"
+    RECOVERING = "recovering"
+    RUNNING = "running"
+    DRAINING = "draining"
+    STOPPING = "stopping"
+    STOPPED = "stopped"
+
+
+def partition_name(template: str, partition: int) -> str:
+    """The concrete key of ``partition`` for a name template.
+
+    >>> partition_name(INPUT_STREAM, 3)
+    'alerter:{p3}:in'
+    """
+    return template.replace(PARTITION_MARK, str(partition))
