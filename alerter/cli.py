@@ -47,6 +47,17 @@ def _parser() -> argparse.ArgumentParser:
     _common(p)
     p.set_defaults(func=commands.cmd_explain)
 
+    p = sub.add_parser("graph", help="list a node's neighbourhood with the learned link shares")
+    p.add_argument("node", help="node id, e.g. /news")
+    p.add_argument("recording", help="recording file to learn the flows from (.jsonl or .jsonl.gz)")
+    p.add_argument("--hops", type=int, default=1, metavar="K", help="links away from the node (default 1)")
+    p.add_argument("--direction", choices=("up", "down"), default="down",
+                   help="up = who sends it visitors, down = where its visitors go (default down)")
+    p.add_argument("--show", type=int, default=50, metavar="N", help="rows to show (default 50)")
+    p.add_argument("--skip-bad", action="store_true", help="report and skip malformed lines")
+    _common(p)
+    p.set_defaults(func=commands.cmd_graph)
+
     p = sub.add_parser("demo", help="run the bundled demo week (Fernhollow Courier) and score it")
     p.add_argument("--out", metavar="FILE", help="write alerts as JSON Lines to FILE")
     p.add_argument("--show", type=int, default=25, metavar="N", help="alerts to show (default 25)")

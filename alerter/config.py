@@ -57,7 +57,8 @@ class BaselineSettings(_Strict):
     adopt_after_hours: int = Field(12, ge=0)
     warmup_hours: int = Field(48, ge=0)
     initial_scale: float = Field(0.5, gt=0)
-    min_scale: float = Field(0.02, ge=0)
+    min_scale: float = Field(0.01, ge=0)
+    count_noise: bool = True
 
 
 class DirectionRule(_Strict):

@@ -29,7 +29,7 @@ from .flows import Attribution
 from .incidents import IncidentTracker, IncidentUpdate
 from .joint import JointModel
 from .nodes import NodeIndex
-from .records import Alert, SpillWarning
+from .records import Alert, SpillWarning, Upstream
 from .rules import RuleBook
 from .timeaxis import HOUR, format_hour, hour_index, local_slots
 
@@ -50,6 +50,7 @@ class StepResult:
     adopted: np.ndarray
     own_expected: np.ndarray  # seasonal baseline b
     imputed: np.ndarray  # filled value where the count is missing (NaN elsewhere)
+    attribution: Attribution | None = None  # per-edge contributions, made before learning
     alerts: list[Alert] = field(default_factory=list)
     incidents: list[IncidentUpdate] = field(default_factory=list)
     spills: list[SpillWarning] = field(default_factory=list)
@@ -132,25 +133,30 @@ class Engine:
         tick = hour_index(hour)
         b_model = self.baseline
         y = b_model.to_working(x)
-        sd = b_model.scale().astype(float)
-        own = np.maximum(b_model.from_working(b_model.forecast(slot, day).astype(float)), 0.0)
+        y_own = b_model.forecast(slot, day)
+        sd = b_model.scale(yhat=y_own).astype(float)
+        own = np.maximum(b_model.from_working(y_own.astype(float)), 0.0)
         flows_on = self.config.flows.enabled
         joint = own + self.joint.forecast(self.prev_excess, tick) if flows_on else own.copy()
         np.maximum(joint, 0.0, out=joint)
-        y_joint = b_model.to_working(joint).astype(float)
+        # An alert must stand out from both the node's own rhythm and the joint forecast: a
+        # surge above the larger, a drop below the smaller (the end of an upstream surge is
+        # no drop, nor is an upstream outage's echo, which its incident already covers).
+        exp_up, exp_dn = np.maximum(joint, own), np.minimum(joint, own)
+        y_up, y_dn = b_model.to_working(exp_up).astype(float), b_model.to_working(exp_dn).astype(float)
         observed = ~np.isnan(x)
         warm = b_model.warm() & observed
         with np.errstate(invalid="ignore"):
-            score = (y - y_joint) / sd
-        low = np.maximum(b_model.from_working(y_joint - self.rules.z("drop") * sd), 0.0)
-        high = b_model.from_working(y_joint + self.rules.z("surge") * sd)
-        up, down = self.rules.evaluate(x, joint, score, warm, tick)
+            score, score_dn = (y - y_up) / sd, (y - y_dn) / sd
+        low = np.maximum(b_model.from_working(y_dn - self.rules.z("drop") * sd), 0.0)
+        high = b_model.from_working(y_up + self.rules.z("surge") * sd)
+        up, down = self.rules.evaluate(x, exp_up, score, warm, tick, exp_dn, score_dn)
         attribution = self.joint.observe(x, own, tick) if flows_on else None
         imputed = self._impute(x, own, attribution)
         adopted = b_model.update(y, slot, day)
         self.prev_excess = np.where(observed, x - own, 0.0)
-        result = StepResult(hour, x, joint, low, high, score, warm, adopted, own, imputed)
-        result.alerts = self._alerts(result, up, down, attribution, tick)
+        result = StepResult(hour, x, joint, low, high, score, warm, adopted, own, imputed, attribution)
+        result.alerts = self._alerts(result, up, down, (exp_up, exp_dn), (score, score_dn))
         active = {(self.nodes.ids[i], d) for d in ("surge", "drop")
                   for i in np.flatnonzero(self.rules.active[d]).tolist()}
         result.incidents = self.incidents.step(tick, format_hour(hour), result.alerts, active)
@@ -168,22 +174,27 @@ class Engine:
             out[gap] = np.maximum(fill[gap], 0.0)
         return out
 
+    def explain_upstream(self, r: StepResult, i: int) -> tuple[tuple[Upstream, ...], float | None, str | None]:
+        """Top upstream neighbours, unexplained part and origin of node ``i`` in hour ``r``."""
+        if r.attribution is None or np.isnan(r.observed[i]):
+            return (), None, None
+        own_excess = float(r.observed[i] - r.own_expected[i])
+        upstream, unexplained = self.joint.upstream(i, r.attribution, r.own_expected, own_excess,
+                                                    hour_index(r.hour))
+        return upstream, unexplained, self.joint.origin(unexplained, own_excess)
+
     def _alerts(self, r: StepResult, up: np.ndarray, down: np.ndarray,
-                attribution: Attribution | None, tick: int) -> list[Alert]:
+                expected: tuple[np.ndarray, np.ndarray], scores: tuple[np.ndarray, np.ndarray]) -> list[Alert]:
         hour = format_hour(r.hour)
         out = []
-        for kind, mask in (("surge", up), ("drop", down)):
+        for kind, mask, exp, score in (("surge", up, expected[0], scores[0]),
+                                       ("drop", down, expected[1], scores[1])):
             for i in np.flatnonzero(mask).tolist():
-                upstream, unexplained, origin = (), None, None
-                if attribution is not None:
-                    own_excess = float(r.observed[i] - r.own_expected[i])
-                    upstream, unexplained = self.joint.upstream(i, attribution, r.own_expected,
-                                                                own_excess, tick)
-                    origin = self.joint.origin(unexplained, own_excess)
+                upstream, unexplained, origin = self.explain_upstream(r, i)
                 out.append(Alert.build(
                     node=self.nodes.ids[i], hour=hour, kind=kind, observed=r.observed[i],
-                    expected=r.expected[i], band_low=r.band_low[i], band_high=r.band_high[i],
-                    score=r.score[i], rule=self.rules.rule_name(kind, i),
+                    expected=exp[i], band_low=r.band_low[i], band_high=r.band_high[i],
+                    score=score[i], rule=self.rules.rule_name(kind, i),
                     streak=self.rules.streak(kind, i), upstream=upstream, unexplained=unexplained,
                     origin=origin,
                 ))

@@ -199,3 +199,25 @@ class JointModel:
                 zip(other.tolist(), beta.tolist(), (tick - self.born[pos]).tolist(), strict=True)]
         return sorted(rows, key=lambda r: (-r[1], r[0]))
 
+
+    def neighbourhood(self, node: str, k: int, direction: str, tick: int) -> list[tuple[int, str, str, float, int]]:
+        """Nodes within ``k`` links up- or downstream: (hops, node, via, learned share, link age).
+
+        ``via`` is the neighbour one hop closer to ``node``; the share is that link's
+        lag-0 coefficient (of the upstream end's visitors reaching the downstream end).
+        """
+        self.sync()
+        hops = self.graph.hops(node, k, direction)
+        rows = []
+        for other, h in sorted(hops.items(), key=lambda kv: (kv[1], kv[0])):
+            if h == 0:
+                continue
+            # the link between `other` and a node one hop closer, seen from its downstream end
+            down = other if direction == "down" else None
+            links = self.coefficient_table(self.nodes.get(other), "up", tick) if down else \
+                self.coefficient_table(self.nodes.get(other), "down", tick)
+            closer = [r for r in links if hops.get(r[0]) == h - 1]
+            via, share, age = closer[0] if closer else ("?", float("nan"), -1)
+            rows.append((h, other, via, share, age))
+        rows.sort(key=lambda r: (r[0], -r[3] if r[3] == r[3] else 0.0, r[1]))
+        return rows

@@ -107,6 +107,9 @@ class NodeHour:
     own_expected: float | None = None
     neighbours: float | None = None
     imputed: float | None = None
+    upstream: tuple[Upstream, ...] = ()
+    unexplained: float | None = None
+    origin: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)

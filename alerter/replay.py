@@ -38,8 +38,9 @@ class ReplayResult:
         return (self.hours[0], self.hours[-1]) if self.hours else None
 
 
-def node_hour(result: StepResult, i: int, alert: str | None) -> NodeHour:
-    """The ``explain`` view of node ``i`` in one step."""
+def node_hour(result: StepResult, i: int, alert: str | None, engine: Engine | None = None) -> NodeHour:
+    """The ``explain`` view of node ``i`` in one step (with attribution when ``engine`` is given)."""
+    upstream, unexplained, origin = engine.explain_upstream(result, i) if engine else ((), None, None)
     x = result.observed[i] if i < result.observed.shape[0] else np.nan
     score = result.score[i]
     imputed = result.imputed[i]
@@ -56,6 +57,9 @@ def node_hour(result: StepResult, i: int, alert: str | None) -> NodeHour:
         own_expected=round(float(result.own_expected[i]), 2),
         neighbours=round(float(result.expected[i] - result.own_expected[i]), 2),
         imputed=None if np.isnan(imputed) else round(float(imputed), 2),
+        upstream=upstream,
+        unexplained=None if unexplained is None else round(unexplained, 1),
+        origin=origin,
     )
 
 
@@ -66,7 +70,7 @@ def _watch(result: StepResult, engine: Engine, watch: tuple[str, ...],
         if node in engine.nodes:
             i = engine.nodes.get(node)
             alert = next((k for k in ("surge", "drop") if (node, k) in kinds), None)
-            trace.setdefault(node, []).append(node_hour(result, i, alert))
+            trace.setdefault(node, []).append(node_hour(result, i, alert, engine))
 
 
 def replay(path: str | Path, config: Config, *, skip_bad: bool = False,

@@ -7,10 +7,15 @@ from collections.abc import Sequence
 from rich.console import Console
 from rich.table import Table
 
-from .records import Alert, NodeHour
+from .incidents import IncidentUpdate
+from .records import Alert, NodeHour, SpillWarning
 from .scoring import Score
 
-__all__ = ["alerts_table", "score_tables", "history_table", "human"]
+__all__ = ["alerts_table", "score_tables", "history_table", "incidents_table", "decomposition_table",
+           "graph_table", "spills_table", "human"]
+
+ESTIMATE_NOTE = ("Upstream shares and kinds are estimates from how counts moved together in the past; "
+                 "they do not prove cause.")
 
 
 def human(value: float | None) -> str:
@@ -37,12 +42,78 @@ def alerts_table(alerts: Sequence[Alert], limit: int = 40) -> Table:
     table = Table(title=title, title_justify="left")
     for name, justify in (("hour (UTC)", "left"), ("node", "left"), ("kind", "left"),
                           ("observed", "right"), ("expected", "right"), ("band", "right"),
-                          ("change", "right"), ("score", "right"), ("rule", "left")):
+                          ("change", "right"), ("score", "right"), ("origin", "left"),
+                          ("likely upstream (est.)", "left")):
         table.add_column(name, justify=justify)  # type: ignore[arg-type]
     for a in alerts[:limit]:
         change = f"{(a.observed - a.expected) / max(a.expected, 1.0) * 100:+.0f}%"
         table.add_row(a.hour, a.node, a.kind, human(a.observed), human(a.expected),
-                      f"{human(a.band_low)}..{human(a.band_high)}", change, f"{a.score:+.1f}", a.rule)
+                      f"{human(a.band_low)}..{human(a.band_high)}", change, f"{a.score:+.1f}",
+                      a.origin or "-", upstream_text(a.upstream))
+    return table
+
+
+def upstream_text(upstream: Sequence[object]) -> str:
+    """``/news 62% (new link)`` style list of named upstream neighbours."""
+    parts = []
+    for u in upstream:
+        link = f" ({u.link} link)" if getattr(u, "link", None) else ""
+        parts.append(f"{u.node} {u.share * 100:.0f}%{link}")  # type: ignore[attr-defined]
+    return ", ".join(parts) or "-"
+
+
+def incidents_table(updates: Sequence[IncidentUpdate], limit: int = 30) -> Table:
+    """The latest state of each incident, in order of start."""
+    latest: dict[str, IncidentUpdate] = {}
+    for u in updates:
+        latest[u.incident] = u
+    rows = sorted(latest.values(), key=lambda u: (u.start, u.incident))
+    title = f"{len(rows)} incident(s)" + (f", first {limit} shown" if len(rows) > limit else "")
+    table = Table(title=title, title_justify="left")
+    for col in ("incident", "kind", "root (est.)", "members", "excess", "start (UTC)", "last update", "state"):
+        table.add_column(col, justify="right" if col in ("members", "excess") else "left")
+    for u in rows[:limit]:
+        table.add_row(u.incident, u.direction, u.root, str(len(u.members)), human(u.total_excess),
+                      u.start, u.hour, u.state)
+    return table
+
+
+def spills_table(spills: Sequence[SpillWarning], limit: int = 20) -> Table:
+    table = Table(title=f"{len(spills)} spill-over warning(s)", title_justify="left")
+    for col in ("hour (UTC)", "node", "forecast", "capacity", "incident", "via"):
+        table.add_column(col)
+    for w in spills[:limit]:
+        table.add_row(w.hour, w.node, human(w.forecast), human(w.capacity), w.incident, w.via)
+    return table
+
+
+def decomposition_table(row: NodeHour) -> Table:
+    """Observed against own expectation, neighbours' part and what is left unexplained."""
+    table = Table(title=f"decomposition at {row.hour} (estimates)", title_justify="left")
+    table.add_column("part")
+    table.add_column("visits", justify="right")
+    table.add_row("observed", human(row.observed if row.observed is not None else row.imputed)
+                  + (" (imputed)" if row.observed is None and row.imputed is not None else ""))
+    table.add_row("own seasonal expectation", human(row.own_expected))
+    table.add_row("neighbours' expected extra (forecast)", human(row.neighbours))
+    for u in row.upstream:
+        link = f", {u.link} link" if u.link else ""
+        table.add_row(f"  from {u.node} ({u.share * 100:.0f}% of the excess{link})", human(u.visits))
+    table.add_row("unexplained", human(row.unexplained))
+    table.add_row("kind", row.origin or "-")
+    return table
+
+
+def graph_table(node: str, rows: Sequence[tuple[int, str, str, float, int]], direction: str,
+                limit: int = 50) -> Table:
+    """Neighbourhood rows: (hops, node, via, lag-0 share, link age in hours)."""
+    arrow = "upstream of" if direction == "up" else "downstream of"
+    shown = f", first {limit} shown" if len(rows) > limit else ""
+    table = Table(title=f"{len(rows)} node(s) {arrow} {node}{shown}", title_justify="left")
+    for col in ("hops", "node", "via", "learned share", "link age (h)"):
+        table.add_column(col, justify="right" if col in ("hops", "learned share", "link age (h)") else "left")
+    for hops, other, via, share, age in rows[:limit]:
+        table.add_row(str(hops), other, via, f"{share:.4f}", str(age))
     return table
 
 

@@ -104,17 +104,21 @@ class RuleBook:
         return int(self.by_direction[direction].streak[node])
 
     def evaluate(self, observed: np.ndarray, expected: np.ndarray, score: np.ndarray,
-                 eligible: np.ndarray, tick: int) -> tuple[np.ndarray, np.ndarray]:
+                 eligible: np.ndarray, tick: int, expected_drop: np.ndarray | None = None,
+                 score_drop: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         """Masks of nodes firing a surge and a drop alert this hour.
 
         ``observed`` and ``expected`` are counts, ``score`` the signed residual in scales,
-        ``eligible`` the nodes that may alert (observed, warm, not imputed).
+        ``eligible`` the nodes that may alert (observed, warm, not imputed). Drops may be
+        judged against their own expectation and score (``expected_drop``, ``score_drop``).
         """
+        exp_dn = expected if expected_drop is None else expected_drop
+        sc_dn = score if score_drop is None else score_drop
         with np.errstate(invalid="ignore"):
-            excess = observed - expected
-            ratio_up = (observed + 1.0) / (expected + 1.0)
-            up = self._direction("surge", score, excess, ratio_up, expected, eligible, tick)
-            down = self._direction("drop", -score, -excess, 1.0 / ratio_up, expected, eligible, tick)
+            up = self._direction("surge", score, observed - expected, (observed + 1.0) / (expected + 1.0),
+                                 expected, eligible, tick)
+            down = self._direction("drop", -sc_dn, exp_dn - observed, (exp_dn + 1.0) / (observed + 1.0),
+                                   exp_dn, eligible, tick)
         return up, down
 
     def _direction(self, direction: str, score: np.ndarray, excess: np.ndarray, ratio: np.ndarray,
