@@ -14,11 +14,11 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 
 from . import report
 from .config import load_config
-from .errors import HourRangeError, RecordingError
+from .errors import AlerterError, HourRangeError, RecordingError
 from .records import write_jsonl
 from .replay import ReplayResult, replay
 from .scoring import load_labels, score_alerts
-from .timeaxis import format_hour, parse_hour
+from .timeaxis import format_hour, hour_index, parse_hour
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_RECORDING = ROOT / "replay_data" / "demo_week.jsonl.gz"
@@ -56,7 +56,8 @@ def run_and_report(recording: Path, args: argparse.Namespace, labels: Path | Non
     _report_bad(result)
     if args.out:
         write_jsonl(args.out, result.alerts)
-    score = score_alerts(result.alerts, load_labels(labels), config.scoring.slack_hours) if labels else None
+    score = (score_alerts(result.alerts, load_labels(labels), config.scoring.slack_hours, result.incidents)
+             if labels else None)
     if args.json:
         span = result.span
         report_json = {
@@ -64,12 +65,17 @@ def run_and_report(recording: Path, args: argparse.Namespace, labels: Path | Non
             "nodes": len(result.engine.nodes) if result.engine else 0,
             "span": [format_hour(span[0]), format_hour(span[1])] if span else None,
             "alerts": len(result.alerts), "bad_lines": len(result.bad_lines),
+            "incidents": len({u.incident for u in result.incidents}),
             "score": score.to_dict() if score else None,
         }
         print(json.dumps(report_json, indent=2, sort_keys=True))
         return 0
     out = report.console()
     out.print(report.alerts_table(result.alerts, args.show))
+    out.print(report.incidents_table(result.incidents))
+    if result.spills:
+        out.print(report.spills_table(result.spills))
+    out.print(report.ESTIMATE_NOTE)
     if args.out:
         out.print(f"wrote {len(result.alerts)} alert(s) to {args.out}")
     if score:
@@ -86,7 +92,35 @@ def cmd_demo(args: argparse.Namespace) -> int:
     if not DEMO_RECORDING.exists():
         raise RecordingError(str(DEMO_RECORDING), None,
                              "the bundled demo recording is missing; run 'alerter scenario' to make it")
-    return run_and_report(DEMO_RECORDING, args, DEMO_LABELS)
+    from .live_cli import alert_line, demo_config, live_replay
+    from .store import connect
+
+    config = demo_config(load_config(args.config))
+    store = connect(config.live)  # live.redis_url, else the embedded server (stopped again below)
+    printer = None if args.json else (lambda a: print(alert_line(a), flush=True))
+    try:
+        result = live_replay(DEMO_RECORDING, config, store, on_alert=printer, show_progress=not args.json)
+    finally:
+        store.close(stop_server=True)
+    if args.out:
+        write_jsonl(args.out, result.alerts)
+    score = score_alerts(result.alerts, load_labels(DEMO_LABELS), config.scoring.slack_hours)
+    if args.json:
+        span = result.span
+        print(json.dumps({
+            "recording": str(DEMO_RECORDING), "hours": len(result.hours),
+            "nodes": len(result.engine.nodes) if result.engine else 0,
+            "span": [format_hour(span[0]), format_hour(span[1])] if span else None,
+            "alerts": len(result.alerts), "bad_lines": 0, "score": score.to_dict(),
+        }, indent=2, sort_keys=True))
+        return 0
+    out = report.console()
+    out.print(report.alerts_table(result.alerts, args.show))
+    if args.out:
+        out.print(f"wrote {len(result.alerts)} alert(s) to {args.out}")
+    for table in report.score_tables(score):
+        out.print(table)
+    return 0
 
 
 def cmd_explain(args: argparse.Namespace) -> int:
@@ -111,7 +145,15 @@ def cmd_explain(args: argparse.Namespace) -> int:
         print(json.dumps({"node": args.node, "at": format_hour(at), "hours": [r.to_dict() for r in rows]},
                          indent=2, sort_keys=True))
     else:
-        report.console().print(report.history_table(args.node, rows, format_hour(at)))
+        out = report.console()
+        out.print(report.history_table(args.node, rows, format_hour(at)))
+        current = next((r for r in rows if r.hour == format_hour(at)), None)
+        if current is not None and current.own_expected is not None:
+            out.print(report.decomposition_table(current))
+        engine = result.engine
+        table = engine.joint.neighbourhood(args.node, 1, "up", hour_index(at))
+        out.print(report.graph_table(args.node, table, "up", 10))
+        out.print(report.ESTIMATE_NOTE)
     if args.plot:
         from .plots import plot_history
 
@@ -128,4 +170,27 @@ def cmd_scenario(args: argparse.Namespace) -> int:
     paths = write_scenario(scenario, Path(args.out))
     for path in paths if isinstance(paths, (list, tuple)) else [paths]:
         print(f"wrote {path}")
+    return 0
+
+
+def cmd_graph(args: argparse.Namespace) -> int:
+    """Replay to learn the flows, then list a node's neighbourhood with its learned shares."""
+    if args.hops < 1:
+        raise AlerterError(f"--hops {args.hops}: must be 1 or more")
+    config = load_config(args.config)
+    with progress_bar("replaying hours", not args.json) as on_hour:
+        result = replay(Path(args.recording), config, skip_bad=args.skip_bad, on_hour=on_hour)
+    _report_bad(result)
+    engine = result.engine
+    assert engine is not None and engine.last_hour is not None
+    engine.nodes.get(args.node)  # raises UnknownNodeError with suggestions
+    rows = engine.joint.neighbourhood(args.node, args.hops, args.direction, hour_index(engine.last_hour))
+    if args.json:
+        keys = ("hops", "node", "via", "share", "link_age_hours")
+        print(json.dumps({"node": args.node, "direction": args.direction, "as_of": format_hour(engine.last_hour),
+                          "neighbours": [dict(zip(keys, r, strict=True)) for r in rows]}, indent=2, sort_keys=True))
+        return 0
+    out = report.console()
+    out.print(report.graph_table(args.node, rows, args.direction, args.show))
+    out.print(f"learned shares as of {format_hour(engine.last_hour)}; {report.ESTIMATE_NOTE}")
     return 0
