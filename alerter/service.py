@@ -1,0 +1,357 @@
+"""The service loop: consumer group in, hour buckets, Engine.step, outbox, checkpoint, XACK.
+
+One Service owns one partition (one input stream). Per closed hour it applies the queued
+edge events, steps the engine, and commits the hour's alerts, dead letters and late
+counts together with the checkpoint in one MULTI/EXEC; only then are the entries
+acknowledged. On start it restores the checkpoint, re-reads its own pending entries,
+claims those a dead consumer left idle, and skips every entry at or below the
+checkpoint's applied id. The engine stays pure; time comes from an injected clock and
+the hourly wake-up from an APScheduler job that only calls ``next_close``.
+"""
+
+from __future__ import annotations
+
+import logging
+import signal
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from types import FrameType
+from typing import Any
+
+import numpy as np
+
+from .buckets import ClosedHour, close_due, dense_counts, next_close, watermark_due
+from .checkpoint import ServiceState, dump, load, peek
+from .config import Config, LiveNames
+from .constants import ServiceState as Phase
+from .constants import partition_name
+from .engine import Engine
+from .errors import BadEntryError
+from .records import Alert, dumps
+from .store import Entry, FieldsIn, Store, id_key, with_retry
+from .timeaxis import format_hour
+from .wire import CountBatch, EdgeChange, decode_entry, fields_text
+
+__all__ = ["Service", "Summary", "Names", "idempotency_key"]
+
+log = logging.getLogger(__name__)
+
+
+def idempotency_key(alert: Alert) -> str:
+    """The outbox key of an alert: node, hour and kind (a sink delivers each key once)."""
+    return f"{alert.node}|{alert.hour}|{alert.kind}"
+
+
+@dataclass(frozen=True)
+class Names:
+    """The concrete Redis names of one partition."""
+
+    input: str
+    outbox: str
+    dead: str
+    late: str
+    checkpoint: str
+    group: str
+    barrier: str
+    barrier_done: str
+
+    @classmethod
+    def of(cls, names: LiveNames, partition: int) -> Names:
+        p = partition
+        return cls(partition_name(names.input, p), partition_name(names.outbox, p),
+                   partition_name(names.dead_letter, p), partition_name(names.late, p),
+                   partition_name(names.checkpoint, p), names.group, names.barrier, names.barrier_done)
+
+
+@dataclass
+class Summary:
+    """What one run did (for the CLI and tests)."""
+
+    hours: list[datetime] = field(default_factory=list)
+    alerts: list[Alert] = field(default_factory=list)
+    counters: dict[str, int] = field(default_factory=dict)
+
+
+class Service:
+    """Drive the engine from one partition's stream; ``drained=True`` exits once it is empty."""
+
+    def __init__(self, config: Config, store: Store, *, partition: int = 0, drained: bool = False,
+                 consumer: str | None = None, on_alert: Callable[[Alert], None] | None = None,
+                 clock: Callable[[], datetime] = lambda: datetime.now(UTC)) -> None:
+        self.config, self.live, self.store = config, config.live, store
+        self.partition, self.drained, self.clock = partition, drained, clock
+        self.consumer = consumer or config.live.consumer
+        self.names = Names.of(config.live.names, partition)
+        self.on_alert = on_alert
+        self.state = ServiceState(Engine(config))
+        self.summary = Summary()
+        self.phase = Phase.STARTING
+        self._stop = threading.Event()
+        self._tick = threading.Event()
+        self._to_ack: list[bytes] = []
+        self._appends: list[tuple[str, FieldsIn]] = []
+        self._dirty = False
+
+    # -- lifecycle -------------------------------------------------------------------------
+    def stop(self, *_: object) -> None:
+        """Ask the loop to finish the current hour, checkpoint and return."""
+        self._stop.set()
+
+    def _set_phase(self, phase: Phase) -> None:
+        self.phase = phase
+        log.info("service state=%s partition=%d consumer=%s", phase.value, self.partition, self.consumer)
+
+    def _retry(self, what: str, fn: Callable[[], object]) -> object:
+        r = self.live.retry
+        return with_retry(fn, r.initial_seconds, r.max_seconds, what, stop=self._stop.is_set)
+
+    def run(self, install_signals: bool = True) -> Summary:
+        """Recover, then read and close hours until stopped (or drained); returns a summary."""
+        if install_signals and threading.current_thread() is threading.main_thread():
+            signal.signal(signal.SIGTERM, self._on_signal)
+            signal.signal(signal.SIGINT, self._on_signal)
+        scheduler = None if self.drained else self._start_scheduler()
+        try:
+            self._recover()
+            self._set_phase(Phase.RUNNING)
+            while not self._stop.is_set():
+                if not self._step_loop():
+                    break
+            self._set_phase(Phase.STOPPING)
+            self._commit("shutdown")
+        finally:
+            if scheduler is not None:
+                scheduler.shutdown(wait=False)
+        self._set_phase(Phase.STOPPED)
+        self.summary.counters = dict(self.state.counters)
+        return self.summary
+
+    def _on_signal(self, signum: int, frame: FrameType | None) -> None:
+        log.info("service signal=%s action=finish-hour-checkpoint-exit", signal.Signals(signum).name)
+        self.stop()
+
+    def _start_scheduler(self) -> Any:
+        from apscheduler.schedulers.background import BackgroundScheduler
+
+        grace = timedelta(seconds=self.live.grace_seconds)
+        scheduler = BackgroundScheduler(timezone=UTC)
+
+        def wake() -> None:  # the job only wakes the loop; deciding what is due stays in the loop
+            self._tick.set()
+            scheduler.add_job(wake, "date", run_date=next_close(datetime.now(UTC), grace), misfire_grace_time=None)
+
+        scheduler.add_job(wake, "date", run_date=next_close(datetime.now(UTC), grace), misfire_grace_time=None)
+        scheduler.start()
+        self._tick.set()  # hours already due at start close at once
+        return scheduler
+
+    # -- recovery ------------------------------------------------------------------------
+    def _recover(self) -> None:
+        self._set_phase(Phase.RECOVERING)
+        t0 = time.perf_counter()
+        n = self.names
+        blob = self._retry("GET checkpoint", lambda: self.store.get(n.checkpoint))
+        if isinstance(blob, bytes):
+            self.state = load(blob)
+        self._retry("XGROUP CREATE", lambda: self.store.ensure_group(n.input, n.group))
+        entries = self._own_pending() + self._claimed()
+        unique = {eid: fields for eid, fields in entries}
+        ordered = sorted(unique.items(), key=lambda e: id_key(e[0]))
+        self._ingest(ordered)
+        applied = self.state.applied_id.decode() if self.state.applied_id else "-"
+        log.info("service recovered partition=%d epoch=%d applied=%s pending=%d open_hours=%d took_ms=%.0f",
+                 self.partition, self.state.epoch, applied, len(ordered), len(self.state.buckets.open),
+                 (time.perf_counter() - t0) * 1000)
+        self._close_due(backlog=True)
+
+    def _own_pending(self) -> list[Entry]:
+        out: list[Entry] = []
+        start = "0"
+        while True:
+            got = self._read(start, block=None)
+            if not got:
+                return out
+            out.extend(got)
+            start = got[-1][0].decode()
+
+    def _claimed(self) -> list[Entry]:
+        n, idle = self.names, int(self.live.claim_idle_seconds * 1000)
+        got = self._retry("XAUTOCLAIM", lambda: self.store.claim_idle(n.input, n.group, self.consumer, idle,
+                                                                      self.live.read_count))
+        entries = got if isinstance(got, list) else []
+        if entries:
+            log.info("service claimed partition=%d entries=%d idle_s=%.0f", self.partition, len(entries),
+                     self.live.claim_idle_seconds)
+        return entries
+
+    def _read(self, start: str, block: int | None) -> list[Entry]:
+        n = self.names
+        got = self._retry("XREADGROUP", lambda: self.store.read_group(
+            n.input, n.group, self.consumer, start, self.live.read_count, block))
+        return got if isinstance(got, list) else []
+
+    # -- the loop ------------------------------------------------------------------------
+    def _step_loop(self) -> bool:
+        """One read and what follows; False when the drained stream is finished."""
+        entries = self._read(">", block=None if self.drained else self.live.block_ms)
+        if entries:
+            for entry in entries:  # close as soon as an hour is due: few open hours per checkpoint
+                self._ingest([entry])
+                self._close_due(backlog=True)
+            return True
+        if self.drained:
+            self._set_phase(Phase.DRAINING)
+            for closed in self.state.buckets.close_all():
+                self._close(closed)
+            for edge in self.state.buckets.take_trailing_edges():
+                self._apply_edge(edge)
+            return False
+        self._close_due()
+        if self._dirty:
+            self._commit("idle")
+        return True
+
+    def _ingest(self, entries: list[Entry]) -> None:
+        applied = self.state.applied_id
+        for eid, fields in entries:
+            self._to_ack.append(eid)
+            self._dirty = True
+            if applied is not None and id_key(eid) <= id_key(applied):
+                self.state.count("skipped")
+                continue
+            self._apply_entry(eid, fields)
+            self.state.applied_id = applied = eid
+
+    def _apply_entry(self, eid: bytes, fields: dict[bytes, bytes]) -> None:
+        try:
+            decoded = decode_entry(fields, self.live.max_entry_bytes)
+        except BadEntryError as exc:
+            self._dead_letter(eid, fields, exc.reason)
+            return
+        if isinstance(decoded, EdgeChange):
+            self.state.buckets.add_edge(decoded)
+        elif not self.state.buckets.add(decoded):
+            self._late(eid, fields, decoded)
+        else:
+            self.state.count("entries")
+
+    def _dead_letter(self, eid: bytes, fields: dict[bytes, bytes], reason: str) -> None:
+        self.state.count("dead")
+        out: dict[str, str | bytes] = {"reason": reason, "entry_id": eid.decode(), "stream": self.names.input}
+        size = sum(len(k) + len(v) for k, v in fields.items())
+        if size > self.live.max_entry_bytes:
+            out.update({f"orig.{k}": v for k, v in fields_text(fields).items()})
+        else:
+            out.update({f"orig.{k.decode('utf-8', 'replace')}": v for k, v in fields.items()})
+        self._appends.append((self.names.dead, out))
+        log.warning("entry dead-letter id=%s reason=%s", eid.decode(), reason)
+
+    def _late(self, eid: bytes, fields: dict[bytes, bytes], batch: CountBatch) -> None:
+        self.state.count("late")
+        self.state.count("late_counts", len(batch.nodes))
+        closed = self.state.buckets.closed_through
+        out: dict[str, str | bytes] = {"entry_id": eid.decode(), "hour": format_hour(batch.hour),
+                                       "closed_through": format_hour(closed) if closed else "-",
+                                       "counts": str(len(batch.nodes))}
+        out.update({f"orig.{k.decode('utf-8', 'replace')}": v for k, v in fields.items()})
+        self._appends.append((self.names.late, out))
+        log.warning("entry late id=%s hour=%s counts=%d closed_through=%s", eid.decode(),
+                    format_hour(batch.hour), len(batch.nodes), out["closed_through"])
+
+    def _close_due(self, backlog: bool = False) -> None:
+        """Close what is due: by watermark when draining, else on the scheduler's wake-up (or
+        right after reading entries, so a backlog of hours already past closes at once)."""
+        buckets = self.state.buckets
+        if self.drained:
+            ready = buckets.close_ready(lambda h: watermark_due(h, buckets.watermark))
+        elif self._tick.is_set() or backlog:
+            self._tick.clear()
+            now, grace = self.clock(), timedelta(seconds=self.live.grace_seconds)
+            ready = buckets.close_ready(lambda h: close_due(h, now, grace))
+        else:
+            return
+        for closed in ready:  # lazily: the next hour leaves its bucket only after this commit
+            self._close(closed)
+            if self._stop.is_set():
+                return  # shutdown: the hour in hand is finished, the rest stay in the checkpoint
+
+    def _apply_edge(self, edge: EdgeChange) -> None:
+        engine = self.state.engine
+        (engine.add_edge if edge.op == "add" else engine.remove_edge)(edge.src, edge.dst, edge.ts)
+
+    def _close(self, closed: ClosedHour) -> None:
+        """Step the engine over one closed hour, then commit and acknowledge."""
+        t0 = time.perf_counter()
+        engine = self.state.engine
+        for edge in closed.edges:
+            self._apply_edge(edge)
+        x = dense_counts(engine.nodes, closed.chunks)
+        engine.counts_array({})  # grows the per-node state to the ids just interned
+        result = engine.step_array(closed.hour, x)
+        hour = format_hour(closed.hour)
+        for alert in result.alerts:
+            self._appends.append((self.names.outbox, {"key": idempotency_key(alert), "node": alert.node,
+                                                      "hour": hour, "kind": alert.kind, "alert": dumps(alert)}))
+        if self.live.partitions > 1:
+            self._barrier(closed.hour, result.observed - result.expected)
+        self.state.count("hours")
+        self.state.count("alerts", len(result.alerts))
+        self._dirty = True  # the engine moved on: this hour must be checkpointed
+        self._commit("hour")
+        self.summary.hours.append(closed.hour)
+        self.summary.alerts.extend(result.alerts)
+        log.info("hour closed hour=%s partition=%d entries=%d nodes=%d edges=%d alerts=%d took_ms=%.1f", hour,
+                 self.partition, closed.entries, len(engine.nodes), len(closed.edges), len(result.alerts),
+                 (time.perf_counter() - t0) * 1000)
+        if self.on_alert is not None:
+            for alert in result.alerts:
+                self.on_alert(alert)
+
+    # -- commit ------------------------------------------------------------------------
+    def _commit(self, why: str) -> None:
+        """Outbox, dead letters, late counts and checkpoint in one MULTI/EXEC, then XACK."""
+        if not self._dirty and not self._appends:
+            return
+        t0 = time.perf_counter()
+        self.state.epoch += 1
+        blob, appends, epoch, n = dump(self.state), list(self._appends), self.state.epoch, self.names
+        tried = False
+
+        def attempt() -> None:
+            nonlocal tried
+            if tried and peek(self.store.get_head(n.checkpoint))[0] == epoch:
+                return  # the EXEC landed before the connection broke: do not write twice
+            tried = True
+            self.store.commit(n.checkpoint, blob, appends)
+
+        self._retry("commit", attempt)
+        ids = list(self._to_ack)
+        self._retry("XACK", lambda: self.store.ack(n.input, n.group, ids))
+        self._appends, self._to_ack, self._dirty = [], [], False
+        log.debug("checkpoint why=%s epoch=%d bytes=%d appends=%d acked=%d took_ms=%.1f", why, epoch, len(blob),
+                  len(appends), len(ids), (time.perf_counter() - t0) * 1000)
+
+    # -- scale-out barrier ---------------------------------------------------------------
+    def _barrier(self, hour: datetime, excess: np.ndarray) -> None:
+        """Publish this partition's excess for the hour; wait for all; read the neighbours'."""
+        from .wire import pack_excess
+
+        engine, parts = self.state.engine, self.live.partitions
+        tag = hour.strftime("%Y%m%d%H")
+        key, done = self.names.barrier.replace("@", tag), self.names.barrier_done.replace("@", tag)
+        blob = pack_excess(engine.nodes.ids, excess)
+        self._retry("barrier publish", lambda: self.store.publish_excess(key, done, self.partition, blob, 86400))
+        t0 = time.perf_counter()
+        while not self._stop.is_set():
+            count = self._retry("barrier count", lambda: self.store.barrier_count(done))
+            if isinstance(count, int) and count >= parts:
+                break
+            time.sleep(0.005)
+        needed = [p for p in range(parts) if p != self.partition]  # all others until the flow model says which
+        if needed:
+            self._retry("barrier read", lambda: self.store.read_excess(key, needed))
+        log.debug("barrier hour=%s partition=%d needed=%s waited_ms=%.1f", format_hour(hour), self.partition,
+                  needed, (time.perf_counter() - t0) * 1000)
