@@ -54,6 +54,7 @@ class BaselineState:
     seen: np.ndarray  # int32 observed hours; 0 means never initialised
     run: np.ndarray  # int32 signed run length of clipped residuals
     run_sum: np.ndarray  # sum of residuals over the current run
+    relearn: np.ndarray  # int32 observed hours left of re-learning after a regime adoption
 
     @property
     def n(self) -> int:
@@ -115,6 +116,7 @@ class SeasonalBaseline:
             seen=np.zeros(n, np.int32),
             run=np.zeros(n, np.int32),
             run_sum=np.zeros(n, dt),
+            relearn=np.zeros(n, np.int32),
         )
 
     def resize(self, n: int) -> None:
@@ -123,7 +125,7 @@ class SeasonalBaseline:
         if n <= old.n:
             return
         new = self._empty(n)
-        for name in ("level", "var", "seen", "run", "run_sum"):
+        for name in ("level", "var", "seen", "run", "run_sum", "relearn"):
             getattr(new, name)[: old.n] = getattr(old, name)
         new.season[:, : old.n] = old.season
         new.week[:, : old.n] = old.week
@@ -178,8 +180,9 @@ class SeasonalBaseline:
         return np.maximum(out, floor, out=out)
 
     def warm(self) -> np.ndarray:
-        """Nodes observed long enough to be alerted on."""
-        return self.state.seen >= max(self.settings.warmup_hours, 1)
+        """Nodes observed long enough to be alerted on, and not re-learning a new regime."""
+        st = self.state
+        return (st.seen >= max(self.settings.warmup_hours, 1)) & (st.relearn == 0)
 
     # -- learning ----------------------------------------------------------------------
     def initialise(self, idx: np.ndarray, y: np.ndarray, slot: int, day: int) -> None:
@@ -243,8 +246,20 @@ class SeasonalBaseline:
         self._smooth(clipped, slot, d)
         self._track_variance(clipped, self._variance_mask(resid, bound, neg_bound, observed), noise)
         adopted = self._adopt(resid, bound, neg_bound, observed)
+        self._count_relearn(adopted, observed)
         st.seen += observed
         return adopted
+
+    def _count_relearn(self, adopted: np.ndarray, observed: np.ndarray) -> None:
+        """After an adoption the profile fits the new level only roughly: for
+        ``relearn_hours`` observed hours the node raises no alerts (it was alerted on while
+        the change was news) while level and profile settle."""
+        st = self.state
+        busy = np.flatnonzero(st.relearn > 0)
+        if busy.size:
+            st.relearn[busy] -= observed[busy]
+        if adopted.any():
+            st.relearn[adopted] = self.settings.relearn_hours
 
     def _smooth(self, clipped: np.ndarray, slot: int, d: int) -> None:
         """Holt-Winters updates written as ``x += rate * error``.

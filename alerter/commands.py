@@ -13,7 +13,7 @@ from pathlib import Path
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
 from . import report
-from .config import load_config
+from .config import Config, load_config
 from .errors import AlerterError, HourRangeError, RecordingError
 from .records import write_jsonl
 from .replay import ReplayResult, replay
@@ -48,27 +48,34 @@ def _report_bad(result: ReplayResult) -> None:
         print(f"alerter: ... {len(result.bad_lines) - 20} more bad lines skipped", file=sys.stderr)
 
 
-def run_and_report(recording: Path, args: argparse.Namespace, labels: Path | None) -> int:
-    """Replay, write alerts, print the table (and the score when labels are given)."""
-    config = load_config(args.config)
-    with progress_bar("replaying hours", not args.json) as on_hour:
-        result = replay(recording, config, skip_bad=getattr(args, "skip_bad", False), on_hour=on_hour)
-    _report_bad(result)
+def own_only(config: Config) -> Config:
+    """The same config with the flow model off: the seasonal baseline alone."""
+    return config.model_copy(update={"flows": config.flows.model_copy(update={"enabled": False})})
+
+
+def present(result: ReplayResult, recording: Path, args: argparse.Namespace, config: Config,
+            labels: Path | None, compare_own_only: bool = False) -> int:
+    """Write alerts, then print tables (or one JSON object) and the score against labels."""
     if args.out:
         write_jsonl(args.out, result.alerts)
-    score = (score_alerts(result.alerts, load_labels(labels), config.scoring.slack_hours, result.incidents)
-             if labels else None)
+    lab = load_labels(labels) if labels else None
+    slack = config.scoring.slack_hours
+    score = score_alerts(result.alerts, lab, slack, result.incidents) if lab else None
+    baseline_only = None
+    if lab is not None and compare_own_only and config.flows.enabled:
+        own = replay(recording, own_only(config))
+        baseline_only = score_alerts(own.alerts, lab, slack, own.incidents)
     if args.json:
         span = result.span
-        report_json = {
+        print(json.dumps({
             "recording": str(recording), "hours": len(result.hours),
             "nodes": len(result.engine.nodes) if result.engine else 0,
             "span": [format_hour(span[0]), format_hour(span[1])] if span else None,
             "alerts": len(result.alerts), "bad_lines": len(result.bad_lines),
             "incidents": len({u.incident for u in result.incidents}),
             "score": score.to_dict() if score else None,
-        }
-        print(json.dumps(report_json, indent=2, sort_keys=True))
+            "score_own_only": baseline_only.to_dict() if baseline_only else None,
+        }, indent=2, sort_keys=True))
         return 0
     out = report.console()
     out.print(report.alerts_table(result.alerts, args.show))
@@ -79,16 +86,22 @@ def run_and_report(recording: Path, args: argparse.Namespace, labels: Path | Non
     if args.out:
         out.print(f"wrote {len(result.alerts)} alert(s) to {args.out}")
     if score:
-        for table in report.score_tables(score):
+        for table in report.score_tables(score, baseline_only):
             out.print(table)
     return 0
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
-    return run_and_report(Path(args.recording), args, Path(args.labels) if args.labels else None)
+    config = load_config(args.config)
+    recording = Path(args.recording)
+    with progress_bar("replaying hours", not args.json) as on_hour:
+        result = replay(recording, config, skip_bad=args.skip_bad, on_hour=on_hour)
+    _report_bad(result)
+    return present(result, recording, args, config, Path(args.labels) if args.labels else None)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    """Push the bundled demo week through Redis, run the service to the end, score it."""
     if not DEMO_RECORDING.exists():
         raise RecordingError(str(DEMO_RECORDING), None,
                              "the bundled demo recording is missing; run 'alerter scenario' to make it")
@@ -102,25 +115,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
         result = live_replay(DEMO_RECORDING, config, store, on_alert=printer, show_progress=not args.json)
     finally:
         store.close(stop_server=True)
-    if args.out:
-        write_jsonl(args.out, result.alerts)
-    score = score_alerts(result.alerts, load_labels(DEMO_LABELS), config.scoring.slack_hours)
-    if args.json:
-        span = result.span
-        print(json.dumps({
-            "recording": str(DEMO_RECORDING), "hours": len(result.hours),
-            "nodes": len(result.engine.nodes) if result.engine else 0,
-            "span": [format_hour(span[0]), format_hour(span[1])] if span else None,
-            "alerts": len(result.alerts), "bad_lines": 0, "score": score.to_dict(),
-        }, indent=2, sort_keys=True))
-        return 0
-    out = report.console()
-    out.print(report.alerts_table(result.alerts, args.show))
-    if args.out:
-        out.print(f"wrote {len(result.alerts)} alert(s) to {args.out}")
-    for table in report.score_tables(score):
-        out.print(table)
-    return 0
+    return present(result, DEMO_RECORDING, args, config, DEMO_LABELS, compare_own_only=True)
 
 
 def cmd_explain(args: argparse.Namespace) -> int:

@@ -55,6 +55,7 @@ class BaselineSettings(_Strict):
     variance_rate: float = Field(0.03, gt=0, le=1)
     clip_scales: float = Field(3.0, gt=0)
     adopt_after_hours: int = Field(12, ge=0)
+    relearn_hours: int = Field(24, ge=0, le=24 * 14)
     warmup_hours: int = Field(48, ge=0)
     initial_scale: float = Field(0.5, gt=0)
     min_scale: float = Field(0.01, ge=0)

@@ -113,6 +113,14 @@ class Engine:
             grown[: self.prev_excess.shape[0]] = self.prev_excess
             self.prev_excess = grown
 
+    def ensure_nodes(self) -> None:
+        """Size the per-node state to every id interned in ``self.nodes`` so far.
+
+        Adapters that intern ids in bulk (the Redis buckets) call this before
+        ``step_array``; ``step`` and ``add_edge`` do it themselves.
+        """
+        self._grow()
+
     def counts_array(self, counts: Mapping[str, float | None]) -> np.ndarray:
         """Dense counts over all nodes (NaN where missing), interning new ids."""
         idx = self.nodes.intern(list(counts))

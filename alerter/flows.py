@@ -127,6 +127,54 @@ def sum_by(index: np.ndarray, weights: np.ndarray, n: int) -> np.ndarray:
     return np.bincount(index, weights=weights, minlength=n).astype(np.float64, copy=False)
 
 
+def index_array(a: np.ndarray, n_nodes: int) -> np.ndarray:
+    """Node indices as int32 (int64 past 2**31 nodes); a read-only array of that type is shared.
+
+    Read-only (e.g. the graph's CSR views) means the caller cannot change it under the
+    learner, so no copy is needed; int32 halves the bytes every per-hour gather reads.
+    """
+    dt = np.int32 if n_nodes < 2**31 else np.int64
+    a = np.asarray(a)
+    if a.dtype == dt and a.ndim == 1 and not a.flags.writeable:
+        return a
+    return np.array(a, dtype=dt)
+
+
+class Segments:
+    """Per-destination sums and expansions over an edge list, fast when ``dst`` is sorted.
+
+    With a destination-sorted edge list (what the joint model passes: the graph's CSR) a
+    sum is one ``np.add.reduceat`` at the starts of the non-empty runs (reduceat yields
+    ``values[start]`` for an empty run, so those are masked) and a per-node value is spread
+    to the edges with ``np.repeat``; otherwise ``np.bincount`` and ``np.take`` are used.
+    """
+
+    def __init__(self, dst: np.ndarray, n: int) -> None:
+        self.dst, self.n = dst, n
+        self.sorted = bool(dst.size == 0 or np.all(dst[1:] >= dst[:-1]))
+        if self.sorted:
+            indptr = np.searchsorted(dst, np.arange(n + 1))
+            self.indptr = indptr.astype(np.int64)
+            self.counts = np.diff(self.indptr)
+            self.nonempty = self.counts > 0
+            self.starts = self.indptr[:-1][self.nonempty]
+
+    def sum(self, values: np.ndarray) -> np.ndarray:
+        """Per node the sum of ``values`` over its in-edges, float64 (pairwise within a run)."""
+        if not self.sorted or values.size == 0:
+            return sum_by(self.dst, values, self.n)
+        out = np.zeros(self.n)
+        out[self.nonempty] = np.add.reduceat(values, self.starts)
+        return out
+
+    def expand(self, per_node: np.ndarray, dtype: np.dtype | type) -> np.ndarray:
+        """``per_node[dst]`` as a new array of ``dtype`` (one sequential ``np.repeat`` when sorted)."""
+        values = per_node.astype(dtype, copy=False)
+        if self.sorted:
+            return np.repeat(values, self.counts)
+        return np.take(values, self.dst, mode="clip")
+
+
 @dataclass(frozen=True)
 class FlowSettings:
     """Settings of the flow learner; stored exactly as given, never modified."""
@@ -240,12 +288,12 @@ class FlowSettings:
 class FlowState:
     """Learned arrays; settings live apart. Per-edge arrays are indexed by edge position."""
 
-    src: np.ndarray  # (E,) int64 source node of each edge
-    dst: np.ndarray  # (E,) int64 destination node
+    src: np.ndarray  # (E,) int32 (int64 past 2**31 nodes) source node of each edge
+    dst: np.ndarray  # (E,) int32 (int64 past 2**31 nodes) destination node
     beta: np.ndarray  # (L+1, E) current iterate
     beta_avg: np.ndarray  # (L+1, E) averaged iterate (used when forgetting is off)
     cov: np.ndarray  # (E, d, d) running mean of z z^T, z = [u(t-0..L), own] (preconditioner)
-    edge_hours: np.ndarray  # (E,) int64 hours the edge was updated
+    edge_hours: np.ndarray  # (E,) int32 hours the edge was updated
     phi: np.ndarray  # (n,) own-lag coefficient
     phi_avg: np.ndarray  # (n,)
     phi_scale: np.ndarray  # (n,)
@@ -367,7 +415,7 @@ class FlowLearner:
         beta[0] = s.prior
         return FlowState(
             src=src, dst=dst, beta=beta, beta_avg=beta.copy(), cov=np.zeros((e, s.block_size, s.block_size), dt),
-            edge_hours=np.zeros(e, np.int64), phi=np.zeros(n, dt), phi_avg=np.zeros(n, dt),
+            edge_hours=np.zeros(e, np.int32), phi=np.zeros(n, dt), phi_avg=np.zeros(n, dt),
             phi_scale=np.zeros(n, dt), node_hours=np.zeros(n, np.int64), quad_mean=np.zeros(n, dt),
             hist_e=np.zeros((h, n), dt), hist_b=np.zeros((h, n), dt))
 
@@ -378,8 +426,7 @@ class FlowLearner:
         default edges are matched on their ``(src, dst)`` pair. Node history is kept, so
         lagged inputs of kept and new edges alike survive.
         """
-        src = np.array(src, dtype=np.int64)
-        dst = np.array(dst, dtype=np.int64)
+        src, dst = index_array(src, n_nodes), index_array(dst, n_nodes)
         old = self.state
         if n_nodes < old.n_nodes:
             raise ValueError(f"n_nodes may only grow: {n_nodes} < {old.n_nodes}")
@@ -425,7 +472,8 @@ class FlowLearner:
             if not kept.all():
                 raise ValueError("src and dst are needed when keep introduces new edges")
             src, dst = st.src[keep], st.dst[keep]
-        fresh = self._empty(0, np.asarray(src, np.int64), np.asarray(dst, np.int64))
+        n_nodes = max(st.n_nodes, 1)
+        fresh = self._empty(0, index_array(src, n_nodes), index_array(dst, n_nodes))
         for name in ("beta", "beta_avg"):
             getattr(fresh, name)[:, kept] = getattr(st, name)[:, keep[kept]]
         fresh.cov[kept] = st.cov[keep[kept]]

@@ -121,8 +121,11 @@ def _pct(value: float) -> str:
     return "n/a" if value != value else f"{value:.2f}"
 
 
-def score_tables(score: Score) -> list[Table]:
-    """Precision per direction, recall per event kind, and the headline figures."""
+def score_tables(score: Score, own_only: Score | None = None) -> list[Table]:
+    """Precision per direction, recall per event kind, and the headline figures.
+
+    With ``own_only`` the headline shows the seasonal baseline alone beside the joint model.
+    """
     prec = Table(title="precision by direction (labelled week)", title_justify="left")
     for col in ("direction", "alerts", "true", "precision"):
         prec.add_column(col)
@@ -135,9 +138,14 @@ def score_tables(score: Score) -> list[Table]:
         rec.add_row(kind, str(row["events"]), str(row["detected"]), _pct(row["recall"]))
     summ = Table(title="headline", title_justify="left")
     summ.add_column("figure")
-    summ.add_column("value")
+    summ.add_column("this run", justify="right")
+    if own_only is not None:
+        summ.add_column("baseline alone", justify="right")
     for name, value in score.summary.items():
-        summ.add_row(name.replace("_", " "), _pct(value))
+        row = [name.replace("_", " "), _pct(value)]
+        if own_only is not None:
+            row.append(_pct(own_only.summary.get(name, float("nan"))))
+        summ.add_row(*row)
     return [prec, rec, summ]
 
 

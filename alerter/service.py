@@ -30,6 +30,7 @@ from .constants import ServiceState as Phase
 from .constants import partition_name
 from .engine import Engine
 from .errors import BadEntryError
+from .incidents import IncidentUpdate
 from .records import Alert, dumps
 from .store import Entry, FieldsIn, Store, id_key, with_retry
 from .timeaxis import format_hour
@@ -43,6 +44,11 @@ log = logging.getLogger(__name__)
 def idempotency_key(alert: Alert) -> str:
     """The outbox key of an alert: node, hour and kind (a sink delivers each key once)."""
     return f"{alert.node}|{alert.hour}|{alert.kind}"
+
+
+def incident_key(update: IncidentUpdate) -> str:
+    """The outbox key of an incident update: incident id and revision (one message each)."""
+    return f"incident|{update.incident}|{update.revision}"
 
 
 @dataclass(frozen=True)
@@ -72,6 +78,7 @@ class Summary:
 
     hours: list[datetime] = field(default_factory=list)
     alerts: list[Alert] = field(default_factory=list)
+    incidents: list[IncidentUpdate] = field(default_factory=list)
     counters: dict[str, int] = field(default_factory=dict)
 
 
@@ -289,12 +296,16 @@ class Service:
         for edge in closed.edges:
             self._apply_edge(edge)
         x = dense_counts(engine.nodes, closed.chunks)
-        engine.counts_array({})  # grows the per-node state to the ids just interned
+        engine.ensure_nodes()
         result = engine.step_array(closed.hour, x)
         hour = format_hour(closed.hour)
         for alert in result.alerts:
-            self._appends.append((self.names.outbox, {"key": idempotency_key(alert), "node": alert.node,
-                                                      "hour": hour, "kind": alert.kind, "alert": dumps(alert)}))
+            self._appends.append((self.names.outbox, {"type": "alert", "key": idempotency_key(alert),
+                                                      "node": alert.node, "hour": hour, "kind": alert.kind,
+                                                      "alert": dumps(alert)}))
+        for update in result.incidents:
+            self._appends.append((self.names.outbox, {"type": "incident", "key": incident_key(update),
+                                                      "hour": hour, "incident": dumps(update)}))
         if self.live.partitions > 1:
             self._barrier(closed.hour, result.observed - result.expected)
         self.state.count("hours")
@@ -303,6 +314,7 @@ class Service:
         self._commit("hour")
         self.summary.hours.append(closed.hour)
         self.summary.alerts.extend(result.alerts)
+        self.summary.incidents.extend(result.incidents)
         log.info("hour closed hour=%s partition=%d entries=%d nodes=%d edges=%d alerts=%d took_ms=%.1f", hour,
                  self.partition, closed.entries, len(engine.nodes), len(closed.edges), len(result.alerts),
                  (time.perf_counter() - t0) * 1000)

@@ -69,7 +69,7 @@ def epoch(st: Store) -> int:
 
 
 def final_view(st: Store) -> tuple[list[tuple[bytes, bytes]], dict[str, np.ndarray], list[str], int]:
-    outbox = [(f[b"key"], f[b"alert"]) for _, f in st.entries(OUT)]
+    outbox = [(f[b"key"], f.get(b"alert") or f[b"incident"]) for _, f in st.entries(OUT)]
     engine = load(st.get(CKPT) or b"").engine
     s = engine.baseline.state
     arrays = {name: getattr(s, name).copy() for name in ("level", "season", "week", "var", "seen", "run", "run_sum")}

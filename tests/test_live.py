@@ -42,7 +42,7 @@ ROOT = Path(__file__).resolve().parent.parent
 
 
 def outbox_lines(st_: Store) -> list[str]:
-    return [fields[b"alert"].decode() for _, fields in st_.entries(OUT)]
+    return [fields[b"alert"].decode() for _, fields in st_.entries(OUT) if fields[b"type"] == b"alert"]
 
 
 def edgy_recording(tmp_path: Path, name: str = "edgy.jsonl") -> Path:
@@ -250,7 +250,8 @@ def test_two_workers_with_a_barrier_give_the_alerts_of_one(tmp_path: Path, store
     for proc in procs:
         _, err = proc.communicate(timeout=60)
         assert proc.returncode == 0, err.decode()[-2000:]
-    got = sorted(f[b"alert"].decode() for p in (0, 1) for _, f in store.entries(f"alerter:{{p{p}}}:outbox"))
+    got = sorted(f[b"alert"].decode() for p in (0, 1) for _, f in store.entries(f"alerter:{{p{p}}}:outbox")
+                 if f[b"type"] == b"alert")
     assert got == sorted(dumps(a) for a in replay(rec, Config()).alerts)
     done = store.client.keys("alerter:{h*}:done")
     assert done and all(store.client.scard(k) == 2 for k in done)
