@@ -89,3 +89,16 @@ def test_two_processes_write_byte_identical_alert_files(tmp_path: Path) -> None:
                        check=True, capture_output=True)
         outs.append(out.read_bytes())
     assert outs[0] == outs[1] and len(outs[0]) > 0
+
+
+def test_graph_lists_neighbours_with_learned_shares(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    rec = small_recording(tmp_path)
+    assert main(["graph", "/", str(rec), "--direction", "down", "--json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    assert [(n["hops"], n["node"], n["via"]) for n in data["neighbours"]] == [(1, "/hot", "/")]
+    assert 0.0 <= data["neighbours"][0]["share"] <= 1.0
+    assert main(["graph", "/hot", str(rec), "--direction", "up"]) == 0
+    assert "upstream of /hot" in capsys.readouterr().out
+    assert main(["graph", "/nope", str(rec)]) == 2
+    assert "unknown node '/nope'" in capsys.readouterr().err
+    assert main(["graph", "/", str(rec), "--hops", "0"]) == 2
