@@ -95,8 +95,17 @@ class Engine:
         return hour_index(self.last_hour) + 1 if self.last_hour is not None else 0
 
     def add_edge(self, src: str, dst: str, ts: datetime | None = None) -> None:
-        """A link appears; it takes effect from the next closed hour."""
-        self.joint.add_edge(src, dst, self._tick_for(ts))
+        """A link appears; it takes effect from the next closed hour.
+
+        A link to a node whose baseline has not started yet is as old as that baseline: the
+        baseline will learn with the link's inflow in it from the first hour, so nothing is
+        left to absorb. Only a link to a node already being learned counts as new.
+        """
+        tick = self._tick_for(ts)
+        learning = dst in self.nodes and self.nodes.get(dst) < self.baseline.state.n \
+            and self.baseline.state.seen[self.nodes.get(dst)] > 0
+        born = tick if learning else tick - int(20 * self.config.flows.age_tau_hours)
+        self.joint.add_edge(src, dst, born)
         self._grow()
 
     def remove_edge(self, src: str, dst: str, ts: datetime | None = None) -> bool:

@@ -103,6 +103,7 @@ Public API
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 
 import numpy as np
@@ -120,6 +121,66 @@ __all__ = [
 ]
 
 _TINY = 1e-30
+
+try:  # optional: fused passes for the default path's learning step; numpy passes otherwise
+    if os.environ.get("ALERTER_FLOW_KERNEL", "") == "numpy":  # force the fallback (benchmarks)
+        raise ImportError("numba disabled by ALERTER_FLOW_KERNEL=numpy")
+    import numba as _numba
+except ImportError:  # pragma: no cover - depends on the environment
+    _numba = None
+
+KERNEL = "numba" if _numba is not None else "numpy"
+"""Which implementation the default path's learning step uses."""
+
+
+def _jit(fn):  # noqa: ANN001, ANN202 - a decorator
+    return _numba.njit(cache=True, nogil=True)(fn) if _numba is not None else fn
+
+
+@_jit
+def _kernel_direction(u, ok, dst, cov, hours, rate_table, ridge, tiny, quad):  # noqa: ANN001, ANN201
+    """Per edge of an observed destination: update cov, overwrite ``u`` with ``v = z / cov'``,
+    add ``z v`` into ``quad[dst]``; other edges get ``v = 0`` and keep their cov."""
+    last = rate_table.shape[0] - 1
+    for e in range(u.shape[0]):
+        i = dst[e]
+        if not ok[i]:
+            u[e] = 0.0
+            continue
+        z = np.float64(u[e])
+        r = np.float64(rate_table[min(hours[e], last)])
+        c = np.float64(cov[e]) + r * (z * z - np.float64(cov[e]))
+        cov[e] = c
+        v = z / (np.float64(cov[e]) * (1.0 + ridge) + tiny)
+        u[e] = v
+        quad[i] += z * np.float64(u[e])
+
+
+@_jit
+def _kernel_step(v, gain, ok, src, dst, beta, hours, pull_table, prior, lo, hi, totals):  # noqa: ANN001, ANN201
+    """Per edge: ``beta += gain[dst] v``, the prior pull, the clip, ``hours += ok[dst]`` and the
+    positive coefficients summed into ``totals[src]`` for the cap."""
+    last = pull_table.shape[0] - 1
+    for e in range(v.shape[0]):
+        i = dst[e]
+        b = np.float64(beta[e]) + gain[i] * np.float64(v[e])
+        beta[e] = b
+        if ok[i]:
+            w = np.float64(pull_table[min(hours[e], last)])
+            beta[e] = np.float64(beta[e]) + w * (prior - np.float64(beta[e]))
+            hours[e] += 1
+        b = min(max(np.float64(beta[e]), lo), hi)
+        beta[e] = b
+        if beta[e] > 0:
+            totals[src[e]] += np.float64(beta[e])
+
+
+@_jit
+def _kernel_scale(beta, src, factor):  # noqa: ANN001, ANN201
+    """``beta *= factor[src]`` where beta > 0 (the conservation cap)."""
+    for e in range(beta.shape[0]):
+        if beta[e] > 0:
+            beta[e] = beta[e] * factor[src[e]]
 
 
 def sum_by(index: np.ndarray, weights: np.ndarray, n: int) -> np.ndarray:
@@ -404,8 +465,10 @@ class FlowLearner:
     def __init__(self, settings: FlowSettings) -> None:
         self.settings = settings
         self.dtype = np.dtype(settings.dtype)
-        self.state = self._empty(0, np.zeros(0, np.int64), np.zeros(0, np.int64))
+        self.state = self._empty(0, np.zeros(0, np.int32), np.zeros(0, np.int32))
         self._buf: dict[str, np.ndarray] = {}
+        self._seg: Segments | None = None
+        self._tables: dict[str, np.ndarray] = {}
 
     # -- shape ---------------------------------------------------------------------------
     def _empty(self, n: int, src: np.ndarray, dst: np.ndarray) -> FlowState:
@@ -480,9 +543,13 @@ class FlowLearner:
         fresh.edge_hours[kept] = st.edge_hours[keep[kept]]
         st.beta, st.beta_avg, st.cov, st.edge_hours = fresh.beta, fresh.beta_avg, fresh.cov, fresh.edge_hours
         st.src, st.dst = fresh.src, fresh.dst
-        self._buf = {}
+        self._buf, self._seg = {}, None
 
     # -- reading -------------------------------------------------------------------------
+    def sum_into_dst(self, values: np.ndarray) -> np.ndarray:
+        """Per node the float64 sum of per-edge ``values`` over its in-edges (run sums when sorted)."""
+        return self._segments().sum(values)
+
     @property
     def coefficients(self) -> np.ndarray:
         """``(L+1, E)`` edge coefficients used for forecasts (averaged when forgetting is off)."""
@@ -517,6 +584,13 @@ class FlowLearner:
             w *= age_weight(age_hours, n_e, s, lag=k, out=self._get("a", (n_e,)))
             u[k] += w
         return u
+
+    def _lag0_inputs(self, e0: np.ndarray, b0: np.ndarray | None, age_hours: np.ndarray | None) -> np.ndarray:
+        """``u_e(t)`` alone; with ``b0`` None the baseline term (and its age weight) is skipped."""
+        if b0 is not None:
+            return self._inputs(e0, b0, age_hours)[0]
+        u = self._get("u", (1, self.state.n_edges))[0]
+        return np.take(e0, self.state.src, out=u, mode="clip")
 
     def _own_input(self) -> np.ndarray:
         st = self.state
@@ -574,6 +648,11 @@ class FlowLearner:
         if eh.shape != (n,) or bn.shape != (n,):
             raise ValueError(f"ehat_next and b_next must have shape ({n},)")
         e0 = np.nan_to_num(eh, nan=0.0).astype(self.dtype)
+        if self.settings.lags == 0 and not self.settings.own_lag:
+            b0 = None if b_next is None else np.nan_to_num(bn, nan=0.0).astype(self.dtype)
+            u = self._lag0_inputs(e0, b0, self._check_age(age_hours))
+            u *= self.coefficients[0]
+            return self._segments().sum(u)
         b0 = np.nan_to_num(bn, nan=0.0).astype(self.dtype)
         u = self._inputs(e0, b0, self._check_age(age_hours))
         _, pred = self._predict(self.coefficients, self.own_coefficients, u, self._own_input())
@@ -585,6 +664,8 @@ class FlowLearner:
         """Learn one closed hour; ``x`` raw counts (NaN = missing), ``b`` baseline (None = 0)."""
         st = self.state
         e, b0, ok = self._clean(x, b)
+        if self._default_path():
+            return self._observe_lag0(e, b0, ok, self._check_age(age_hours), direction)
         u = self._inputs(e, b0, self._check_age(age_hours))
         own = self._own_input()
         c_pub, predicted = self._predict(self.coefficients, self.own_coefficients, u, own)
@@ -740,3 +821,156 @@ class FlowLearner:
         st.head = (st.head + 1) % h
         st.hist_e[st.head] = e
         st.hist_b[st.head] = b
+
+    # -- the default path: lag 0, no own lag, forgetting, preconditioning ----------------
+    # With one lag and no own lag the preconditioner is a per-edge scalar (diagonal RLS), so
+    # the hour is a short sequence of in-place elementwise passes over float arrays plus
+    # run sums over the destination-sorted edge list; the step and scale rates, functions
+    # of an edge's observed hours, come from small lookup tables.
+    def _default_path(self) -> bool:
+        s = self.settings
+        return s.lags == 0 and not s.own_lag and s.forgetting and s.precondition
+
+    def _segments(self) -> Segments:
+        """Run sums over the current edge list (rebuilt when the edges or node count change)."""
+        st, seg = self.state, self._seg
+        if seg is None or seg.dst is not st.dst or seg.n != st.n_nodes:
+            seg = self._seg = Segments(st.dst, st.n_nodes)
+        return seg
+
+    def _hour_table(self, name: str) -> np.ndarray | None:
+        """Per observed-hours value of the scale rate or the prior-pull weight, exact to its end.
+
+        ``rate(h) = max(1 / (h + 1), scale_rate)`` and ``pull(h) = step * prior_pull *
+        exp(-h / prior_hours)`` (the same float64 expressions as the generic path); each table
+        ends where the value has reached its constant (``scale_rate``; 0 after exp
+        underflows), so a clipped lookup is exact for any ``h``. None if it would be huge.
+        """
+        table = self._tables.get(name)
+        if table is None:
+            s = self.settings
+            if name == "rate":
+                h = np.arange(int(np.ceil(1.0 / s.scale_rate)) + 2, dtype=np.float64)
+                table = np.maximum(1.0 / (h + 1.0), s.scale_rate)
+            else:
+                length = int(746.0 * s.prior_hours) + 2
+                if length > 1 << 22:
+                    return None
+                h = np.arange(length, dtype=np.int64)
+                table = s.step * s.prior_pull * np.exp(-h / s.prior_hours)
+            table = self._tables[name] = table.astype(self.dtype)
+        return table
+
+    def _per_edge(self, name: str, buf: str) -> np.ndarray:
+        """``table[edge_hours]`` (clipped lookup) into a reused buffer."""
+        out = self._get(buf, (self.state.n_edges,))
+        table = self._hour_table(name)
+        if table is None:  # a very slow prior decay: evaluate the expression directly
+            s = self.settings
+            out[:] = s.step * s.prior_pull * np.exp(-self.state.edge_hours / s.prior_hours)
+            return out
+        return np.take(table, self.state.edge_hours, out=out, mode="clip")
+
+    def _observe_lag0(self, e: np.ndarray, b0: np.ndarray, ok: np.ndarray, age: np.ndarray | None,
+                      direction: str) -> FlowStep:
+        """``observe`` on the default path; same results as the generic path up to rounding."""
+        st = self.state
+        seg = self._segments()
+        u = self._lag0_inputs(e, b0, age)
+        raw = np.multiply(st.beta[0], u)  # a new array: it becomes the attribution's raw
+        predicted = seg.sum(raw)
+        attribution = self._attribute(raw, e, direction, seg)
+        self._learn_lag0(u, np.where(ok, e - predicted, 0.0), ok, seg)
+        return FlowStep(predicted=predicted, attribution=attribution, updated=ok)
+
+    def _attribute(self, raw: np.ndarray, e: np.ndarray, direction: str, seg: Segments) -> Attribution:
+        """:func:`cap_contributions` over run sums, per-edge arrays in the learner's dtype."""
+        if direction not in ("auto", "surge", "drop"):
+            raise ValueError(f"direction must be 'auto', 'surge' or 'drop', got {direction!r}")
+        n, dt = self.state.n_nodes, self.dtype
+        ex = e.astype(np.float64)  # cleaned excess: 0 where the count is missing
+        sign = np.sign(ex) if direction == "auto" else np.full(n, 1.0 if direction == "surge" else -1.0)
+        target = np.maximum(ex * sign, 0.0)
+        part = seg.expand(sign, dt)
+        part *= raw
+        np.maximum(part, 0.0, out=part)
+        total = seg.sum(part)
+        factor = np.divide(target, total, out=np.ones(n), where=total > target)
+        capped = seg.expand(factor, dt)
+        capped *= part
+        inverse = np.divide(1.0, target, out=np.zeros(n), where=target > 0)
+        share = seg.expand(inverse, dt)
+        share *= capped
+        return Attribution(raw=raw, capped=capped, share=share, explained=seg.sum(capped))
+
+    def _learn_lag0(self, u: np.ndarray, err: np.ndarray, ok: np.ndarray, seg: Segments) -> None:
+        """The generic ``_learn`` for d = 1: fused kernels if numba is there, else numpy passes."""
+        if _numba is not None and self._hour_table("pull") is not None:
+            self._learn_lag0_fused(u, err, ok)
+        else:
+            self._learn_lag0_numpy(u, err, ok, seg)
+
+    def _learn_lag0_fused(self, u: np.ndarray, err: np.ndarray, ok: np.ndarray) -> None:
+        """Two passes over the edges (direction, then step + pull + clip + cap totals), one
+        more only when some source exceeds the cap; float64 inside, stored in the dtype."""
+        st, s = self.state, self.settings
+        quad = np.zeros(st.n_nodes)
+        _kernel_direction(u, ok, st.dst, st.cov.reshape(-1), st.edge_hours, self._hour_table("rate"),
+                          s.ridge, _TINY, quad)
+        gain = self._gain_lag0(quad, err, ok) * s.step
+        totals = np.zeros(st.n_nodes)
+        pull = self._hour_table("pull") if s.prior_pull > 0 else np.zeros(1, self.dtype)
+        _kernel_step(u, gain, ok, st.src, st.dst, st.beta[0], st.edge_hours, pull, s.prior,
+                     s.beta_min, s.beta_max, totals)
+        if s.cap is not None and (totals > s.cap).any():
+            factor = np.ones(st.n_nodes, self.dtype)
+            over = totals > s.cap
+            factor[over] = s.cap / totals[over]
+            _kernel_scale(st.beta[0], st.src, factor)
+        st.node_hours += ok
+        st.hours += 1
+
+    def _learn_lag0_numpy(self, u: np.ndarray, err: np.ndarray, ok: np.ndarray, seg: Segments) -> None:
+        """The generic ``_learn`` for d = 1, written as in-place passes (``u`` is consumed)."""
+        st, s = self.state, self.settings
+        mask = None if ok.all() else seg.expand(ok, bool)  # in-edges of observed destinations
+        beta, cov = st.beta[0], st.cov.reshape(-1)
+        if mask is not None:
+            u *= mask  # z: zero input on unobserved destinations
+        rate = self._per_edge("rate", "rate")
+        if mask is not None:
+            rate *= mask
+        tmp = self._get("tmp", (st.n_edges,))
+        np.multiply(u, u, out=tmp)  # cov += rate * (z^2 - cov)
+        tmp -= cov
+        tmp *= rate
+        cov += tmp
+        v = np.multiply(cov, 1.0 + s.ridge, out=tmp)  # v = z / (cov (1 + ridge) + tiny)
+        v += _TINY
+        np.divide(u, v, out=v)
+        gain = self._gain_lag0(seg.sum(np.multiply(u, v, out=rate)), err, ok)
+        v *= seg.expand(s.step * gain, self.dtype)
+        beta += v
+        if s.prior_pull > 0:
+            pull = self._per_edge("pull", "rate")
+            if mask is not None:
+                pull *= mask
+            np.subtract(s.prior, beta, out=tmp)
+            tmp *= pull
+            beta += tmp
+        np.clip(beta, s.beta_min, s.beta_max, out=beta)
+        self._apply_cap(st.beta)
+        st.edge_hours += 1 if mask is None else mask
+        st.node_hours += ok
+        st.hours += 1
+
+    def _gain_lag0(self, quad: np.ndarray, err: np.ndarray, ok: np.ndarray) -> np.ndarray:
+        """Per destination ``err / norm``; with a constant step ``mu_max`` is the node's own step."""
+        st, s = self.state, self.settings
+        step_n, rate_n = self._rates(st.node_hours)
+        step_n *= ok
+        rate_n *= ok
+        st.quad_mean += rate_n * (quad - st.quad_mean)
+        norm = np.maximum(st.quad_mean, step_n * quad)
+        norm += s.eps
+        return err / norm

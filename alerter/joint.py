@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .config import AttributionSettings, FlowConfig
-from .flows import Attribution, FlowLearner, FlowSettings, persistence_forecast, sum_by
+from .flows import Attribution, FlowLearner, FlowSettings, persistence_forecast
 from .graph import LinkGraph
 from .nodes import NodeIndex
 from .records import Upstream
@@ -64,6 +64,7 @@ class JointModel:
         self._synced = -1
         self.indptr = np.zeros(1, np.int64)
         self.born = np.zeros(0, np.int64)
+        self._age = np.zeros(0, np.float32)  # per-hour link ages, reused (one pass per hour)
 
     # -- structure ---------------------------------------------------------------------
     def add_edge(self, src: str, dst: str, tick: int) -> None:
@@ -105,11 +106,19 @@ class JointModel:
         csr = self.graph.csr()
         self.learner.resize(n, csr.src_sorted, csr.dst_sorted)
         self.indptr = np.asarray(csr.indptr, np.int64)
-        self.born = self.graph.born[csr.order]
+        born = self.graph.born[csr.order]
+        small = born.size == 0 or (born.min() > -2**31 and born.max() < 2**31)
+        self.born = born.astype(np.int32) if small else born  # hour ticks fit int32: half the bytes
+        self._age = np.zeros(self.born.shape, np.float32)
         self._synced = key  # type: ignore[assignment]
 
     def ages(self, tick: int) -> np.ndarray:
         return (tick - self.born).astype(np.float64)
+
+    def _ages32(self, tick: int) -> np.ndarray:
+        """``ages(tick)`` as float32 in a reused buffer (exact below 2**24 hours); what the learner
+        uses anyway, without the float64 temporaries."""
+        return np.subtract(tick, self.born, out=self._age, casting="unsafe")
 
     # -- per hour ----------------------------------------------------------------------
     def forecast(self, prev_excess: np.ndarray, tick: int) -> np.ndarray:
@@ -121,19 +130,19 @@ class JointModel:
         """
         self.sync()
         ehat = persistence_forecast(prev_excess, self.cfg.excess_decay)
-        return self.learner.forecast(ehat, np.zeros_like(ehat), self.ages(tick))
+        # b_next = 0 (see above): None lets the learner skip the baseline term and link ages
+        return self.learner.forecast(ehat, None, None)
 
     def observe(self, x: np.ndarray, b: np.ndarray, tick: int) -> Attribution:
         """Learn the seen hour; return the attribution made before learning from it."""
         self.sync()
-        step = self.learner.observe(x, b, self.ages(tick))
+        step = self.learner.observe(x, b, self._ages32(tick))
         self.removed = [r for r in self.removed if tick - r.tick <= self.attr.removed_memory_hours]
         return step.attribution
 
     def inflow(self, attribution: Attribution) -> np.ndarray:
         """Per node, the signed sum of its neighbours' contributions (for imputation)."""
-        st = self.learner.state
-        return sum_by(st.dst, attribution.raw, st.n_nodes)
+        return self.learner.sum_into_dst(attribution.raw)
 
     # -- explaining one node -----------------------------------------------------------
     def upstream(self, i: int, attribution: Attribution, b: np.ndarray, own_excess: float,
@@ -145,10 +154,8 @@ class JointModel:
         lo, hi = (int(self.indptr[i]), int(self.indptr[i + 1])) if i + 1 < len(self.indptr) else (0, 0)
         src = self.learner.state.src[lo:hi]
         visits = attribution.capped[lo:hi].astype(float)
-        links: list[str | None] = ["new" if tick - t < self.attr.new_link_hours else None
-                                   for t in self.born[lo:hi].tolist()]
         if own_excess < 0:
-            src, visits, links = self._with_removed(i, src, visits, links, b, tick)
+            src, visits = self._with_removed(i, src, visits, b)
         target = abs(own_excess)
         total = float(visits.sum())
         if total > target > 0:
@@ -160,18 +167,23 @@ class JointModel:
             if share < self.attr.min_share:
                 break
             picked.append(Upstream(self.nodes.ids[int(src[k])], round(float(visits[k]), 1),
-                                   round(float(share), 3), links[k]))
+                                   round(float(share), 3), self._link_label(lo + k, hi, tick)))
         unexplained = max(target - float(visits.sum()), 0.0)
         return tuple(picked), unexplained * (1.0 if own_excess >= 0 else -1.0)
 
-    def _with_removed(self, i: int, src: np.ndarray, visits: np.ndarray, links: list[str | None],
-                      b: np.ndarray, tick: int) -> tuple[np.ndarray, np.ndarray, list[str | None]]:
+    def _link_label(self, pos: int, hi: int, tick: int) -> str | None:
+        """"removed" past the node's in-edges (a remembered link), "new" for a young link."""
+        if pos >= hi:
+            return "removed"
+        return "new" if tick - int(self.born[pos]) < self.attr.new_link_hours else None
+
+    def _with_removed(self, i: int, src: np.ndarray, visits: np.ndarray,
+                      b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         ghosts = [r for r in self.removed if r.dst == i]
         if not ghosts:
-            return src, visits, links
+            return src, visits
         lost = np.array([r.beta * max(r.absorbed, 1e-3) * max(float(b[r.src]), 0.0) for r in ghosts])
-        return (np.concatenate([src, np.array([r.src for r in ghosts])]),
-                np.concatenate([visits, lost]), links + ["removed"] * len(ghosts))
+        return np.concatenate([src, np.array([r.src for r in ghosts])]), np.concatenate([visits, lost])
 
     def origin(self, unexplained: float, own_excess: float) -> str:
         """originating / propagated / mixed, from the unexplained share of the excess."""
