@@ -182,8 +182,10 @@ def cmd_graph(args: argparse.Namespace) -> int:
     rows = engine.joint.neighbourhood(args.node, args.hops, args.direction, hour_index(engine.last_hour))
     if args.json:
         keys = ("hops", "node", "via", "share", "link_age_hours")
-        print(json.dumps({"node": args.node, "direction": args.direction, "as_of": format_hour(engine.last_hour),
-                          "neighbours": [dict(zip(keys, r, strict=True)) for r in rows]}, indent=2, sort_keys=True))
+        print(json.dumps({"node": args.node, "direction": args.direction,
+                          "as_of": format_hour(engine.last_hour),
+                          "neighbours": [dict(zip(keys, r, strict=True)) for r in rows]},
+                         indent=2, sort_keys=True))
         return 0
     out = report.console()
     out.print(report.graph_table(args.node, rows, args.direction, args.show))

@@ -212,7 +212,8 @@ class JointModel:
         return sorted(rows, key=lambda r: (-r[1], r[0]))
 
 
-    def neighbourhood(self, node: str, k: int, direction: str, tick: int) -> list[tuple[int, str, str, float, int]]:
+    def neighbourhood(self, node: str, k: int, direction: str,
+                      tick: int) -> list[tuple[int, str, str, float, int]]:
         """Nodes within ``k`` links up- or downstream: (hops, node, via, learned share, link age).
 
         ``via`` is the neighbour one hop closer to ``node``; the share is that link's

@@ -174,8 +174,10 @@ def live_replay(recording: Path, config: Config, store: Store,
     services = run_services(config, store, list(range(config.live.partitions)), drained=True, on_alert=on_alert)
     summaries: list[Summary] = [s.summary for s in services]
     alerts = sorted((a for s in summaries for a in s.alerts), key=lambda a: (a.hour, a.kind, a.node))
-    incidents = sorted((u for s in summaries for u in s.incidents), key=lambda u: (u.hour, u.incident, u.revision))
-    result = ReplayResult(alerts=alerts, incidents=incidents, hours=sorted(set(h for s in summaries for h in s.hours)))
+    incidents = sorted((u for s in summaries for u in s.incidents),
+                       key=lambda u: (u.hour, u.incident, u.revision))
+    hours = sorted(set(h for s in summaries for h in s.hours))
+    result = ReplayResult(alerts=alerts, incidents=incidents, hours=hours)
     result.engine = services[0].state.engine
     return result
 

@@ -12,8 +12,8 @@ import numpy as np
 from .config import Config
 from .engine import Engine, StepResult
 from .errors import RecordingError
-from .recording import CountsEvent, EdgeEvent, Header, read_recording
 from .incidents import IncidentUpdate
+from .recording import CountsEvent, EdgeEvent, Header, read_recording
 from .records import Alert, NodeHour, SpillWarning
 from .timeaxis import format_hour
 

@@ -8,7 +8,7 @@ from rich.console import Console
 from rich.table import Table
 
 from .incidents import IncidentUpdate
-from .records import Alert, NodeHour, SpillWarning
+from .records import Alert, NodeHour, SpillWarning, Upstream
 from .scoring import Score
 
 __all__ = ["alerts_table", "score_tables", "history_table", "incidents_table", "decomposition_table",
@@ -53,12 +53,12 @@ def alerts_table(alerts: Sequence[Alert], limit: int = 40) -> Table:
     return table
 
 
-def upstream_text(upstream: Sequence[object]) -> str:
+def upstream_text(upstream: Sequence[Upstream]) -> str:
     """``/news 62% (new link)`` style list of named upstream neighbours."""
     parts = []
     for u in upstream:
-        link = f" ({u.link} link)" if getattr(u, "link", None) else ""
-        parts.append(f"{u.node} {u.share * 100:.0f}%{link}")  # type: ignore[attr-defined]
+        link = f" ({u.link} link)" if u.link else ""
+        parts.append(f"{u.node} {u.share * 100:.0f}%{link}")
     return ", ".join(parts) or "-"
 
 
@@ -142,10 +142,10 @@ def score_tables(score: Score, own_only: Score | None = None) -> list[Table]:
     if own_only is not None:
         summ.add_column("baseline alone", justify="right")
     for name, value in score.summary.items():
-        row = [name.replace("_", " "), _pct(value)]
+        cells = [name.replace("_", " "), _pct(value)]
         if own_only is not None:
-            row.append(_pct(own_only.summary.get(name, float("nan"))))
-        summ.add_row(*row)
+            cells.append(_pct(own_only.summary.get(name, float("nan"))))
+        summ.add_row(*cells)
     return [prec, rec, summ]
 
 

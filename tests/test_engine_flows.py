@@ -7,7 +7,7 @@ from datetime import timedelta
 
 import numpy as np
 
-from alerter.config import CapacityRule, Config, IncidentSettings
+from alerter.config import CapacityRule, Config, IncidentSettings, PartialDirectionRule, RuleOverride, RuleSettings
 from alerter.engine import Engine
 from alerter.timeaxis import parse_hour
 
@@ -87,15 +87,14 @@ def test_a_removed_link_is_named_for_the_drop_it_causes() -> None:
 def test_spill_over_warning_for_a_downstream_node_over_capacity() -> None:
     surge = 24 * 14 + 10
     hub, child = _hub_child(24 * 15, seed=4, surge_at=surge, factor=8.0)
-    cfg = Config(incidents=IncidentSettings(capacity=[CapacityRule(match=["/child"], visits_per_hour=900)]))
-    # the child itself must not alert, so only the warning can name it: raise its thresholds
-    cfg = cfg.model_copy(update={"rules": cfg.rules.model_copy(update={"overrides": []})})
+    quiet_child = RuleOverride(name="quiet", match=["/child"], surge=PartialDirectionRule(enabled=False))
+    cfg = Config(incidents=IncidentSettings(capacity=[CapacityRule(match=["/child"], visits_per_hour=900)]),
+                 rules=RuleSettings(overrides=[quiet_child]))
     _, results = _run(cfg, hub, child)
-    spills = [w for r in results[surge:surge + 3] for w in r.spills]
-    normal = [w for r in results[: surge] for w in r.spills]
-    assert normal == []
-    # the child is a member of the hub's incident once it alerts, so the warning comes
-    # at the surge's first hour only if the child has not joined; accept either, but a
-    # warning, when present, names the child via the hub with a forecast above capacity
-    for w in spills:
-        assert w.node == "/child" and w.via == "/hub" and w.forecast > w.capacity
+    assert [w for r in results[:surge] for w in r.spills] == []
+    first = results[surge].spills
+    # the hub's incident is open after its first surge hour; the next hour's forecast for
+    # the child (its baseline plus SHARE of the hub's persisted excess) is far above 900
+    assert [(w.node, w.via) for w in first] == [("/child", "/hub")]
+    assert first[0].forecast > first[0].capacity == 900
+    assert first[0].hour == "2026-11-16T18:00:00Z"  # the hour after the surge's first hour
