@@ -133,7 +133,10 @@ class SeasonalBaseline:
         self._scratch = _Scratch(n, self.dtype)
 
     def to_working(self, counts: np.ndarray) -> np.ndarray:
-        return to_working(counts, self.settings.transform).astype(self.dtype, copy=False)
+        """Counts to the working scale in the state's float type (one pass, no float64 copy)."""
+        if self.settings.transform == "log1p":
+            return np.log1p(np.asarray(counts), dtype=self.dtype)
+        return np.asarray(counts, dtype=self.dtype).copy()
 
     def from_working(self, values: np.ndarray) -> np.ndarray:
         return from_working(values, self.settings.transform)
@@ -155,12 +158,12 @@ class SeasonalBaseline:
         On the log scale, a count of 5 is far noisier than a count of 5,000; a page's quiet
         night hours need a wider band than its busy afternoon. Returns None when off.
         """
-        if not (self.settings.count_noise and self.settings.transform == "log1p"):
+        if not self._count_noise_on():
             return None
-        mu = np.expm1(np.maximum(yhat, 0.0, out=out), out=out)
-        denom = np.add(mu, 1.0, out=self._scratch.get("cn_denom"))
-        denom *= denom
-        return np.divide(mu, denom, out=out)
+        # with mu = e^y - 1: mu / (1 + mu)^2 = e^-y - e^-2y = t (1 - t), t = e^-y
+        t = np.exp(np.negative(np.maximum(yhat, 0.0, out=out), out=out), out=out)
+        one_minus = np.subtract(1.0, t, out=self._scratch.get("cn_tmp"))
+        return np.multiply(t, one_minus, out=out)
 
     def scale(self, out: np.ndarray | None = None, yhat: np.ndarray | None = None) -> np.ndarray:
         """Residual scale (standard deviation on the working scale), floored.
@@ -219,32 +222,42 @@ class SeasonalBaseline:
         st.var[:] = var
         st.seen[:] = seen
 
-    def update(self, y: np.ndarray, slot: int, day: int) -> np.ndarray:
+    def update(self, y: np.ndarray, slot: int, day: int, forecast: np.ndarray | None = None,
+               scale: np.ndarray | None = None) -> np.ndarray:
         """Learn one hour; ``y`` on the working scale, NaN where missing.
 
-        Returns the boolean mask of nodes adopted as a new regime this hour.
+        ``forecast`` and ``scale`` may be passed when the caller has just computed them for
+        this hour (``self.forecast(slot, day)`` and ``self.scale(yhat=that forecast)``), to
+        save the passes. Returns the boolean mask of nodes adopted as a new regime this hour.
         """
         st, s, sc = self.state, self.settings, self._scratch
         d = self._day(day)
         missing = np.isnan(y, out=sc.get("missing", bool))
         observed = np.logical_not(missing, out=sc.get("observed", bool))
-        fresh = np.equal(st.seen, 0, out=sc.get("fresh", bool))
-        fresh &= observed
-        if fresh.any():
-            self.initialise(np.flatnonzero(fresh), y[fresh], slot, day)
-
-        yhat = self.forecast(slot, d, out=sc.get("yhat"))
+        youngest = int(st.seen.min()) if st.n else 0  # one cheap reduction gates the rare paths
+        started = False
+        if youngest == 0:
+            fresh = np.equal(st.seen, 0, out=sc.get("fresh", bool))
+            fresh &= observed
+            if fresh.any():
+                self.initialise(np.flatnonzero(fresh), y[fresh], slot, day)
+                started = True
+        if started or forecast is None or scale is None:
+            forecast = self.forecast(slot, d, out=sc.get("yhat"))
+            scale = self.scale(out=sc.get("sd"), yhat=forecast)
+        yhat = forecast
         resid = np.subtract(y, yhat, out=sc.get("resid"))
-        np.copyto(resid, 0, where=missing)
-        bound = self.scale(out=sc.get("bound"), yhat=yhat)
+        if youngest == 0 or missing.any():
+            np.copyto(resid, 0, where=missing)
+        bound = np.multiply(scale, s.clip_scales, out=sc.get("bound"))
         noise = self._scratch.buffers.get("cn") if self._count_noise_on() else None
-        bound *= s.clip_scales
         neg_bound = np.negative(bound, out=sc.get("neg_bound"))
         # clip(resid, -bound, bound) as two passes: np.clip is ~3x slower than min + max.
         clipped = np.minimum(resid, bound, out=sc.get("clipped"))
         np.maximum(clipped, neg_bound, out=clipped)
         self._smooth(clipped, slot, d)
-        self._track_variance(clipped, self._variance_mask(resid, bound, neg_bound, observed), noise)
+        use = self._variance_mask(resid, bound, neg_bound, observed, youngest)
+        self._track_variance(clipped, use, noise, youngest)
         adopted = self._adopt(resid, bound, neg_bound, observed)
         self._count_relearn(adopted, observed)
         st.seen += observed
@@ -277,7 +290,7 @@ class SeasonalBaseline:
             st.week[d] += np.multiply(clipped, s.delta, out=tmp)
 
     def _variance_mask(self, resid: np.ndarray, bound: np.ndarray, neg_bound: np.ndarray,
-                       observed: np.ndarray) -> np.ndarray:
+                       observed: np.ndarray, youngest: int) -> np.ndarray:
         """Nodes whose residual may move the band: observed, and inside the clip once warm.
 
         A warm node's residual beyond the clip is an event or a new regime, not noise; let
@@ -289,15 +302,16 @@ class SeasonalBaseline:
         st, sc = self.state, self._scratch
         keep = np.less_equal(resid, bound, out=sc.get("keep", bool))
         keep &= np.greater_equal(resid, neg_bound, out=sc.get("keep2", bool))
-        cold = np.less(st.seen, max(self.settings.warmup_hours, 1), out=sc.get("cold", bool))
-        keep |= cold
+        if youngest < max(self.settings.warmup_hours, 1):
+            keep |= np.less(st.seen, max(self.settings.warmup_hours, 1), out=sc.get("cold", bool))
         keep &= observed
         return keep
 
     def _count_noise_on(self) -> bool:
         return self.settings.count_noise and self.settings.transform == "log1p"
 
-    def _track_variance(self, clipped: np.ndarray, use: np.ndarray, noise: np.ndarray | None) -> None:
+    def _track_variance(self, clipped: np.ndarray, use: np.ndarray, noise: np.ndarray | None,
+                        youngest: int) -> None:
         """EW variance of the clipped residual: ``v += rate * mask * (e^2 - noise - v)``.
 
         With count noise on, ``v`` is the variance beyond the count noise (over-dispersion
@@ -308,18 +322,15 @@ class SeasonalBaseline:
         """
         st, sc = self.state, self._scratch
         rate = self.settings.variance_rate
-        mask = sc.get("mask")
-        mask[:] = use
         tmp = np.multiply(clipped, clipped, out=sc.get("tmp"))
         if noise is not None:
             tmp -= noise
         tmp -= st.var
-        tmp *= mask
         tmp *= rate
-        young = np.flatnonzero(st.seen < int(np.ceil(1.0 / rate)))
-        if young.size:
+        if youngest < int(np.ceil(1.0 / rate)):
+            young = np.flatnonzero(st.seen < int(np.ceil(1.0 / rate)))
             tmp[young] *= np.maximum(1.0 / (st.seen[young] + 1.0), rate) / rate
-        st.var += tmp
+        np.add(st.var, tmp, out=st.var, where=use)
         if noise is not None:
             np.maximum(st.var, 0.0, out=st.var)
 

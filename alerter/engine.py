@@ -151,7 +151,8 @@ class Engine:
         b_model = self.baseline
         y = b_model.to_working(x)
         y_own = b_model.forecast(slot, day)
-        sd = b_model.scale(yhat=y_own).astype(float)
+        sd32 = b_model.scale(yhat=y_own)
+        sd = sd32.astype(float)
         own = np.maximum(b_model.from_working(y_own.astype(float)), 0.0)
         flows_on = self.config.flows.enabled
         joint = own + self.joint.forecast(self.prev_excess, tick) if flows_on else own.copy()
@@ -170,7 +171,7 @@ class Engine:
         up, down = self.rules.evaluate(x, exp_up, score, warm, tick, exp_dn, score_dn)
         attribution = self.joint.observe(x, own, tick) if flows_on else None
         imputed = self._impute(x, own, attribution)
-        adopted = b_model.update(y, slot, day)
+        adopted = b_model.update(y, slot, day, forecast=y_own, scale=sd32)
         self.prev_excess = np.where(observed, x - own, 0.0)
         result = StepResult(hour, x, joint, low, high, score, warm, adopted, own, imputed, attribution)
         result.alerts = self._alerts(result, up, down, (exp_up, exp_dn), (score, score_dn))

@@ -127,7 +127,7 @@ try:  # optional: fused passes for the default path's learning step; numpy passe
         raise ImportError("numba disabled by ALERTER_FLOW_KERNEL=numpy")
     import numba as _numba
 except ImportError:  # pragma: no cover - depends on the environment
-    _numba = None
+    _numba = None  # type: ignore[assignment]
 
 KERNEL = "numba" if _numba is not None else "numpy"
 """Which implementation the default path's learning step uses."""
@@ -856,8 +856,8 @@ class FlowLearner:
                 length = int(746.0 * s.prior_hours) + 2
                 if length > 1 << 22:
                     return None
-                h = np.arange(length, dtype=np.int64)
-                table = s.step * s.prior_pull * np.exp(-h / s.prior_hours)
+                ages = np.arange(length, dtype=np.int64)
+                table = s.step * s.prior_pull * np.exp(-ages / s.prior_hours)
             table = self._tables[name] = table.astype(self.dtype)
         return table
 

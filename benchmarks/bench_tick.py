@@ -1,0 +1,292 @@
+"""Benchmark one full engine tick at production size: 366k nodes, 22M links (``--quick``: 1/20).
+
+Builds a synthetic link graph (power-law in-degree, uniform sources, link ages spread over
+a year with some brand-new links) and loads it with ``LinkGraph.from_arrays`` into an
+``Engine(Config())`` whose baseline warms up after a few hours. After warm-up hours of
+Poisson counts with a daily rhythm it times ``Engine.step_array`` (baseline, joint forecast,
+rules, flow learning, attribution, alerts, incidents) as a median over the timed ticks,
+and the parts inside those same ticks: ``joint.forecast``, ``joint.observe`` and the
+baseline's methods. It prints peak memory (``ru_maxrss``, whole process including the
+build; and the peak over the timed ticks alone), an estimate of the bytes the per-edge
+flow step moves, a measured memory bandwidth (``np.copyto`` of a 1 GiB float32 array) and
+the ratio of the measured flow time to that bandwidth bound. Targets (PASS/MISS): full
+tick < 250 ms, peak memory < 2 GiB.
+
+Run: ``.venv/bin/python benchmarks/bench_tick.py [--quick] [--ticks N] [--warm N]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import platform
+import resource
+import statistics
+import time
+from collections import defaultdict
+from collections.abc import Callable
+from datetime import timedelta
+from typing import Any
+
+import numpy as np
+
+from alerter import flows
+from alerter.config import BaselineSettings, Config
+from alerter.engine import Engine
+from alerter.graph import LinkGraph
+from alerter.timeaxis import hour_index, parse_hour
+
+N_NODES, N_EDGES = 366_000, 22_000_000
+TARGET_TICK_MS = 250.0
+TARGET_PEAK_GIB = 2.0
+START = parse_hour("2026-11-02T07:00:00Z")
+BASELINE_METHODS = ("to_working", "from_working", "forecast", "scale", "warm", "update")
+
+
+# -- synthetic data ----------------------------------------------------------------------
+def _draw_keys(n: int, e: int, rng: np.random.Generator) -> np.ndarray:
+    """About ``e`` sorted distinct ``dst << 32 | src`` keys; Zipf-like in-degree, no self-loops."""
+    weights = 1.0 / np.arange(1, n + 1) ** 0.9
+    weights = np.minimum(weights / weights.sum() * e, 0.25 * n)  # a hub cannot exceed n sources
+    indeg = rng.multinomial(e, rng.permutation(weights / weights.sum()))
+    dst = np.repeat(np.arange(n, dtype=np.int64), indeg)
+    src = rng.integers(0, n - 1, size=dst.size)
+    src += src >= dst  # uniform over the other n - 1 nodes: no self-loop
+    keys = (dst << 32) | src
+    del dst, src
+    keys.sort()
+    return keys[np.concatenate([[True], keys[1:] != keys[:-1]])]
+
+
+def synthetic_edges(n: int, e: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """Exactly ``e`` distinct edges sorted by (dst, src): draw a few percent more, drop the surplus."""
+    extra = 1.03
+    keys = _draw_keys(n, int(e * extra), rng)
+    while keys.size < e:  # duplicates at the hubs ate more than the margin: draw again, larger
+        extra *= 1.05
+        keys = _draw_keys(n, int(e * extra), rng)
+    keys = np.delete(keys, np.sort(rng.choice(keys.size, keys.size - e, replace=False)))
+    return keys & 0xFFFFFFFF, keys >> 32
+
+
+def link_hours(e: int, tick0: int, rng: np.random.Generator) -> np.ndarray:
+    """Birth hour per link: uniform over the past year, 1% born in the last two days."""
+    born = tick0 - rng.integers(48, 24 * 365, size=e)
+    fresh = rng.random(e) < 0.01
+    born[fresh] = tick0 - rng.integers(0, 48, size=int(fresh.sum()))
+    return born
+
+
+def hourly_counts(n: int, hours: int, seed: int) -> list[np.ndarray]:
+    """Poisson counts with a daily rhythm around log-normal levels, 1% missing (NaN)."""
+    rng = np.random.default_rng(seed)
+    level = rng.lognormal(3.0, 1.5, n)
+    out = []
+    for h in range(hours):
+        x = rng.poisson(level * (1.0 + 0.5 * np.sin(2 * np.pi * (h % 24) / 24.0))).astype(float)
+        x[rng.random(n) < 0.01] = np.nan
+        out.append(x)
+    return out
+
+
+def build_engine(n: int, e: int, seed: int, warmup_hours: int) -> Engine:
+    """Engine over ``n`` nodes "n0".. with ``e`` bulk-loaded links; baseline and rules sized."""
+    rng = np.random.default_rng(seed)
+    eng = Engine(Config(baseline=BaselineSettings(warmup_hours=warmup_hours)))
+    eng.counts_array({f"n{i}": 0.0 for i in range(n)})  # interns the ids and sizes baseline/rules
+    t0 = time.perf_counter()
+    src, dst = synthetic_edges(n, e, rng)
+    t1 = time.perf_counter()
+    born = link_hours(src.size, hour_index(START), rng)
+    eng.joint.graph = LinkGraph.from_arrays(eng.nodes, src, dst, born)
+    eng.joint._synced = -1  # a new graph object starts at version 0 again: force the next sync
+    del src, dst, born
+    indeg = eng.joint.graph.in_degree()
+    print(f"graph: {eng.joint.graph.n_edges:,} links over {n:,} nodes; synthetic draw "
+          f"{(t1 - t0) * 1e3:.0f} ms, from_arrays {(time.perf_counter() - t1) * 1e3:.0f} ms; "
+          f"max in-degree {indeg.max():,}, nodes without in-links {(indeg == 0).sum():,}", flush=True)
+    return eng
+
+
+# -- timing ------------------------------------------------------------------------------
+class PartTimer:
+    """Wraps bound methods of live objects so their wall time accumulates per tick."""
+
+    def __init__(self) -> None:
+        self.tick: dict[str, float] = defaultdict(float)
+        self.ticks: list[dict[str, float]] = []
+
+    def wrap(self, obj: Any, method: str, part: str) -> None:
+        inner: Callable[..., Any] = getattr(obj, method)
+
+        def timed(*args: Any, **kwargs: Any) -> Any:
+            t0 = time.perf_counter()
+            try:
+                return inner(*args, **kwargs)
+            finally:
+                self.tick[part] += (time.perf_counter() - t0) * 1e3
+
+        setattr(obj, method, timed)
+
+    def close_tick(self, total_ms: float) -> None:
+        parts = dict(self.tick)
+        parts["tick"] = total_ms
+        self.ticks.append(parts)
+        self.tick = defaultdict(float)
+
+    def median(self, part: str) -> float:
+        return statistics.median(t.get(part, 0.0) for t in self.ticks)
+
+
+def surge(x: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:
+    """Every third tick multiplies 50 random nodes by 20 so alerts and incidents are built."""
+    x = x.copy()
+    if k % 3 == 0:
+        x[rng.choice(x.size, 50, replace=False)] *= 20.0
+    return x
+
+
+def run_ticks(eng: Engine, data: list[np.ndarray], warm: int, ticks: int, seed: int) -> tuple[PartTimer, int]:
+    """Warm ``warm`` hours, then time ``ticks`` hours; returns the timer and the alert count."""
+    for h in range(warm):
+        t0 = time.perf_counter()
+        eng.step_array(START + timedelta(hours=h), data[h % len(data)])
+        print(f"  warm-up hour {h + 1}/{warm}: {(time.perf_counter() - t0) * 1e3:8.1f} ms", flush=True)
+    timer = PartTimer()
+    timer.wrap(eng.joint, "forecast", "joint.forecast")
+    timer.wrap(eng.joint, "observe", "joint.observe")
+    for name in BASELINE_METHODS:
+        timer.wrap(eng.baseline, name, "baseline")
+    rng = np.random.default_rng(seed + 1)
+    alerts = 0
+    for k in range(ticks):
+        h = warm + k
+        x = surge(data[h % len(data)], k, rng)
+        t0 = time.perf_counter()
+        res = eng.step_array(START + timedelta(hours=h), x)
+        timer.close_tick((time.perf_counter() - t0) * 1e3)
+        alerts += len(res.alerts)
+    return timer, alerts
+
+
+# -- memory ------------------------------------------------------------------------------
+def peak_gib() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20  # Linux: KiB
+
+
+def reset_hwm() -> bool:
+    """Reset the kernel's peak-RSS mark (VmHWM) so a later read covers only what follows."""
+    try:
+        with open("/proc/self/clear_refs", "w") as fh:
+            fh.write("5")
+        return True
+    except OSError:
+        return False
+
+
+def hwm_gib() -> float:
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 2**20
+    return float("nan")
+
+
+def bandwidth_gbs(repeat: int = 5) -> float:
+    """Best copy bandwidth (read + write bytes per second) of a 1 GiB float32 ``np.copyto``."""
+    a = np.ones(2**28, np.float32)
+    b = np.empty_like(a)
+    best = float("inf")
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        np.copyto(b, a)
+        best = min(best, time.perf_counter() - t0)
+    return 2 * a.nbytes / best / 1e9
+
+
+# -- the bytes estimate ------------------------------------------------------------------
+def edge_passes(eng: Engine) -> list[tuple[str, int]]:
+    """Bytes per edge of each pass over per-edge arrays in the default flow path, as implemented.
+
+    Read from the learner's actual array dtypes; mirrors ``FlowLearner._forecast_lag0`` and
+    ``_observe_lag0`` (lag 0, no own lag, forgetting, preconditioning, age weighting, dst
+    sorted). Gathers of node arrays count the index read and the output write (the node
+    array stays in cache); reductions count their input read.
+    """
+    st, joint = eng.joint.learner.state, eng.joint
+    f = st.beta.dtype.itemsize
+    i_src, h_e, born = st.src.dtype.itemsize, st.edge_hours.dtype.itemsize, joint.born.dtype.itemsize
+    return [
+        ("forecast: u = take(ehat, src)", i_src + f),
+        ("forecast: c = beta * u", 3 * f),
+        ("forecast: reduceat(c) over dst runs", f),
+        ("observe: age weight from born (sub, mul, exp, min)", born + f + 3 * 2 * f),
+        ("observe: take(e, src), take(b, src)", 2 * (i_src + f)),
+        ("observe: u = e_src + w * b_src (2 ops)", 2 * 3 * f),
+        ("observe: c = beta * u, reduceat(c)", 3 * f + f),
+        ("attribution: part = max(c * sign_dst, 0) (repeat sign, mul, max)", f + 3 * f + 2 * f),
+        ("attribution: reduceat(part), capped = part * factor_dst (repeat, mul)", f + f + 3 * f),
+        ("attribution: reduceat(capped), share = capped * inv_target_dst", f + f + 3 * f),
+        ("learn: cov += r (u^2 - cov) (mul, sub, mul, add)", 4 * 3 * f),
+        ("learn: v = u / (cov (1 + ridge) + tiny) (3 ops)", 3 * 3 * f),
+        ("learn: quad = reduceat(u * v)", 3 * f + f),
+        ("learn: beta += step * gain_dst * v (repeat, 2 ops)", f + 2 * 3 * f),
+        ("learn: prior pull (hours -> exp weight, 3 ops)", h_e + f + 2 * 2 * f + 3 * 3 * f),
+        ("learn: clip beta, cap: bincount(src, beta), factor gather, scale", 2 * f + i_src + f
+         + i_src + f + 3 * f),
+        ("learn: edge_hours += 1", 2 * h_e),
+    ]
+
+
+def verdict(ok: bool) -> str:
+    return "PASS" if ok else "MISS"
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="1/20 of the full size")
+    ap.add_argument("--ticks", type=int, default=7, help="timed ticks (>= 5)")
+    ap.add_argument("--warm", type=int, default=4, help="warm-up hours before timing")
+    ap.add_argument("--seed", type=int, default=0)
+    args = ap.parse_args()
+    scale = 20 if args.quick else 1
+    n, e = N_NODES // scale, N_EDGES // scale
+    kernel = getattr(flows, "KERNEL", "numpy")
+    print(f"python {platform.python_version()}, numpy {np.__version__}, {platform.machine()}; "
+          f"flow kernel: {kernel}; {args.warm} warm-up hours, median of {args.ticks} ticks")
+    eng = build_engine(n, e, args.seed, warmup_hours=2)
+    data = hourly_counts(n, 24, args.seed)
+    print(f"peak memory after build: {peak_gib():.2f} GiB", flush=True)
+    reset_hwm()
+    timer, alerts = run_ticks(eng, data, args.warm, args.ticks, args.seed)
+    tick_peak, peak = hwm_gib(), peak_gib()
+    tick = timer.median("tick")
+    fc, ob, bl = timer.median("joint.forecast"), timer.median("joint.observe"), timer.median("baseline")
+    print(f"full tick (Engine.step_array): median {tick:8.1f} ms over {args.ticks} ticks "
+          f"(min {min(t['tick'] for t in timer.ticks):.1f}, max {max(t['tick'] for t in timer.ticks):.1f}); "
+          f"{alerts} alerts  [target < {TARGET_TICK_MS:g} ms: {verdict(tick < TARGET_TICK_MS)}]")
+    rest = statistics.median(t["tick"] - t.get("joint.forecast", 0) - t.get("joint.observe", 0)
+                             - t.get("baseline", 0) for t in timer.ticks)
+    print(f"  parts (medians): joint.forecast {fc:7.1f} ms | joint.observe {ob:7.1f} ms "
+          f"(learn + attribution) | baseline {bl:6.1f} ms | rest (scores, rules, alerts, "
+          f"incidents, impute) {rest:6.1f} ms")
+    print(f"peak memory (ru_maxrss, whole process incl. build): {peak:.2f} GiB  "
+          f"[target < {TARGET_PEAK_GIB:g} GiB: {verdict(peak < TARGET_PEAK_GIB)}]; "
+          f"peak over the ticks alone (VmHWM after reset): {tick_peak:.2f} GiB")
+    passes = edge_passes(eng)
+    edges = eng.joint.learner.state.n_edges
+    per_edge = sum(b for _, b in passes)
+    del eng, data
+    bw = bandwidth_gbs()
+    bound_ms = per_edge * edges / (bw * 1e9) * 1e3
+    print("edge step estimate for the numpy path (the numba kernels fuse the learn rows):")
+    print(f"  {len(passes)} pass groups, {per_edge} bytes/edge x {edges:,} edges = "
+          f"{per_edge * edges / 1e9:.2f} GB per tick")
+    for name, b in passes:
+        print(f"    {b:3d} B/edge  {name}")
+    print(f"memory bandwidth (np.copyto 1 GiB float32, read+write): {bw:.1f} GB/s -> bound "
+          f"{bound_ms:.1f} ms; measured flow step (forecast + observe) {fc + ob:.1f} ms = "
+          f"{(fc + ob) / bound_ms:.2f}x the bound")
+
+
+if __name__ == "__main__":
+    main()
