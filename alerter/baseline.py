@@ -18,17 +18,212 @@ profile of the warm nodes (sharing shape across series beats learning each alone
 raises no alerts until it has been observed ``warmup_hours`` times.
 
 Missing counts (NaN) leave a node's state untouched.
+
+Speed: with numba importable (and ``ALERTER_BASELINE_KERNEL`` not ``"numpy"``) one hour is
+one fused, vectorised pass over the nodes (``SeasonalBaseline.step``: forecast, count-noise
+scale, clipping, level/season/week, variance, runs and adoption bookkeeping; numpy's exp
+before it), float32 and float64 alike; otherwise a sequence of numpy passes. Both do the
+same float operations in the same order (``tests/test_baseline_kernels.py``). ``KERNEL``
+says which is in use; ``SeasonalBaseline.kernel = "numpy"`` forces the fallback per object.
 """
 
 from __future__ import annotations
 
+import math
+import os
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from .config import BaselineSettings
 
-__all__ = ["BaselineState", "SeasonalBaseline", "to_working", "from_working"]
+__all__ = ["KERNEL", "BaselineState", "SeasonalBaseline", "to_working", "from_working"]
+
+try:  # optional: one fused pass per hour over the nodes; numpy passes otherwise
+    if os.environ.get("ALERTER_BASELINE_KERNEL", "") == "numpy":  # force the fallback
+        raise ImportError("numba disabled by ALERTER_BASELINE_KERNEL=numpy")
+    import numba as _numba
+except ImportError:  # pragma: no cover - depends on the environment
+    _numba = None  # type: ignore[assignment]
+
+KERNEL = "numba" if _numba is not None else "numpy"
+"""Which implementation ``SeasonalBaseline`` uses for forecast, scale and update."""
+
+
+def _jit(fn):  # noqa: ANN001, ANN202 - a decorator
+    # error_model="numpy": a division by zero gives inf/nan instead of a check per division,
+    # which keeps the loops free of exception paths (and vectorisable).
+    return _numba.njit(cache=True, nogil=True, error_model="numpy")(fn) if _numba is not None else fn
+
+
+def _jit_inline(fn):  # noqa: ANN001, ANN202 - a decorator
+    # Helpers of the update kernel, inlined at numba's level: a call per node that passes
+    # arrays would cost reference counting per node.
+    if _numba is None:
+        return fn
+    return _numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")(fn)
+
+
+# The kernels below do, node by node, exactly the float operations of the numpy path, in
+# the same order and the same precision (constants arrive as scalars of the state's dtype
+# in the tuple ``p``, so float32 state stays float32 arithmetic; where numpy rounds a float64
+# intermediate to the dtype, ``cast`` does the same). Only ``exp`` is left to numpy, so that
+# it is the same SIMD exp in both modes. No fastmath (it would allow FMA contraction).
+_P_ALPHA, _P_GAMMA, _P_DELTA, _P_CLIP, _P_RATE, _P_FLOOR, _P_ZERO, _P_ONE = range(8)
+_I_WARM, _I_YOUNG, _I_ADOPT, _I_RELEARN, _I_WEEKLY, _I_NOISE, _I_COMPUTE_SD = range(7)
+
+
+@_jit
+def _kernel_forecast(level, season, week, out, neg, zero):  # noqa: ANN001, ANN201
+    """``out = level + season + week``; ``neg = -max(out, 0)`` (the count noise's exponent)."""
+    for i in range(level.shape[0]):
+        f = level[i] + season[i]
+        f += week[i]
+        out[i] = f
+        neg[i] = -(f if (f > zero or f != f) else zero)
+
+
+@_jit
+def _kernel_neg(yhat, neg, zero):  # noqa: ANN001, ANN201
+    """``neg = -max(yhat, 0)``, NaN kept (as ``np.maximum``)."""
+    for i in range(yhat.shape[0]):
+        f = yhat[i]
+        neg[i] = -(f if (f > zero or f != f) else zero)
+
+
+@_jit
+def _kernel_scale(var, t, noise_on, p, out):  # noqa: ANN001, ANN201
+    """``out = max(sqrt(var + t (1 - t)), floor)`` (``sqrt(var)`` without count noise)."""
+    one, floor = p[_P_ONE], p[_P_FLOOR]
+    for i in range(var.shape[0]):
+        v = var[i]
+        if noise_on:
+            ti = t[i]
+            v = v + ti * (one - ti)
+        sd = math.sqrt(v)
+        out[i] = sd if not sd < floor else floor
+
+
+@_jit_inline
+def _k_sd(var_i, t_i, p, noise_on):  # noqa: ANN001, ANN201
+    """Scale and count noise of one node (as ``scale`` and ``_count_noise``)."""
+    one, floor = p[_P_ONE], p[_P_FLOOR]
+    noise = t_i * (one - t_i) if noise_on else p[_P_ZERO]
+    v = var_i + noise if noise_on else var_i
+    sd = math.sqrt(v)
+    return (sd if not sd < floor else floor), noise
+
+
+@_jit_inline
+def _k_clip(resid, bound):  # noqa: ANN001, ANN201
+    """``maximum(minimum(resid, bound), -bound)``, NaN kept as numpy does."""
+    clipped = bound if resid > bound else resid
+    return -bound if clipped < -bound else clipped
+
+
+@_jit_inline
+def _k_var_delta(clipped, noise, var_i, p, noise_on):  # noqa: ANN001, ANN201
+    """``rate * (e^2 - noise - v)`` in the dtype (``_track_variance``)."""
+    tmp = clipped * clipped
+    if noise_on:
+        tmp -= noise
+    tmp -= var_i
+    return tmp * p[_P_RATE]
+
+
+@_jit_inline
+def _k_young(seen_i, rate64):  # noqa: ANN001, ANN201
+    """The warm-up factor ``max(1 / (seen + 1), rate) / rate`` in float64."""
+    return max(1.0 / (seen_i + 1.0), rate64) / rate64
+
+
+@_jit_inline
+def _k_var_apply(var_i, tmp, use, p, noise_on):  # noqa: ANN001, ANN201
+    if use:
+        var_i = var_i + tmp
+    if noise_on:
+        var_i = var_i if not var_i < p[_P_ZERO] else p[_P_ZERO]
+    return var_i
+
+
+@_jit_inline
+def _k_run(run_i, sum_i, resid, up, down, obs, zero):  # noqa: ANN001, ANN201
+    """Advance one signed run (``_runs``): a flip or a residual inside the clip resets."""
+    if (up and run_i < 0) or (down and run_i > 0) or (obs and not up and not down):
+        run_i = 0
+        sum_i = zero
+    if up or down:
+        run_i += 1 if up else -1
+        sum_i += resid
+    return run_i, sum_i
+
+
+@_jit_inline
+def _k_relearn(relearn_i, obs, hit, relearn_hours):  # noqa: ANN001, ANN201
+    if hit:
+        return relearn_hours
+    return relearn_i - 1 if (obs and relearn_i > 0) else relearn_i
+
+
+@_jit
+def _kernel_update(y, yhat, sd, t, st, p, ip, rate64, adopted):  # noqa: ANN001, ANN201
+    """One hour over all nodes, no node young (``seen >= ceil(1 / variance_rate)``)."""
+    _update_loop(y, yhat, sd, t, st, p, ip, rate64, adopted, False)
+
+
+@_jit
+def _kernel_update_young(y, yhat, sd, t, st, p, ip, rate64, adopted):  # noqa: ANN001, ANN201
+    """One hour over all nodes, some young (the float64 warm-up rate is computed)."""
+    _update_loop(y, yhat, sd, t, st, p, ip, rate64, adopted, True)
+
+
+@_jit
+def _kernel_adopt(idx, level, run, run_sum):  # noqa: ANN001, ANN201
+    """Adopt the runs that lasted: the level jumps by the run's mean residual (in float64,
+    rounded to the dtype, as numpy), and the run starts over."""
+    zero = run_sum.dtype.type(0)
+    for i in idx:
+        level[i] = level[i] + np.float64(run_sum[i]) / np.float64(abs(run[i]))
+        run[i] = 0
+        run_sum[i] = zero
+
+
+@_jit_inline
+def _update_loop(y, yhat, sd, t, st, p, ip, rate64, adopted, young):  # noqa: ANN001, ANN201
+    """The fused hour. ``sd`` is read, or (``ip[_I_COMPUTE_SD]``) computed from ``var`` and
+    ``t = exp(-max(yhat, 0))`` and written. ``adopted`` is written; the adopted nodes'
+    level jump and run reset are left to ``_kernel_adopt`` (a division per node would
+    otherwise be paid by every node of the vectorised loop)."""
+    level, season, week, var, seen, run, run_sum, relearn = st
+    noise_on, zero, adopt_after = ip[_I_NOISE], p[_P_ZERO], ip[_I_ADOPT]
+    cast = var.dtype.type  # rounds a float64 to the dtype, as numpy's stores do
+    for i in range(y.shape[0]):
+        yi, var_i, seen_i = y[i], var[i], seen[i]
+        obs = yi == yi
+        sd_i, noise = _k_sd(var_i, t[i], p, noise_on)
+        if ip[_I_COMPUTE_SD]:
+            sd[i] = sd_i
+        else:
+            sd_i = sd[i]
+        resid = cast(yi - yhat[i]) if obs else zero
+        bound = sd_i * p[_P_CLIP]
+        clipped = _k_clip(resid, bound)
+        level[i] += clipped * p[_P_ALPHA]
+        season[i] += clipped * p[_P_GAMMA]
+        if ip[_I_WEEKLY]:
+            week[i] += clipped * p[_P_DELTA]
+        tmp = _k_var_delta(clipped, noise, var_i, p, noise_on)
+        if young and seen_i < ip[_I_YOUNG]:
+            tmp = cast(tmp * _k_young(seen_i, rate64))
+        use = obs and (clipped == resid or seen_i < ip[_I_WARM])
+        var[i] = _k_var_apply(var_i, tmp, use, p, noise_on)
+        run_i, sum_i = _k_run(run[i], run_sum[i], resid, obs and resid > bound,
+                              obs and resid < -bound, obs, zero)
+        hit = adopt_after > 0 and abs(run_i) >= adopt_after
+        run[i], run_sum[i] = run_i, sum_i
+        relearn[i] = _k_relearn(relearn[i], obs, hit, ip[_I_RELEARN])
+        seen[i] = seen_i + obs
+        adopted[i] = hit
 
 
 def to_working(counts: np.ndarray, transform: str) -> np.ndarray:
@@ -104,6 +299,21 @@ class SeasonalBaseline:
         self.dtype = np.dtype(settings.dtype)
         self.state = self._empty(0)
         self._scratch = _Scratch(0, self.dtype)
+        self.kernel = KERNEL
+        """``"numba"`` (fused kernels) or ``"numpy"``; set to ``"numpy"`` to force the fallback."""
+        s, dt = settings, self.dtype.type
+        self._p = tuple(dt(v) for v in (s.alpha, s.gamma, s.delta, s.clip_scales, s.variance_rate,
+                                        s.min_scale, 0.0, 1.0))
+        self._rate_hours = int(np.ceil(1.0 / s.variance_rate))
+
+    def _ip(self, noise: bool, compute_sd: bool) -> tuple[int, ...]:
+        """Integer settings of the update kernel (see ``_I_*``)."""
+        s = self.settings
+        return (max(s.warmup_hours, 1), self._rate_hours, s.adopt_after_hours, s.relearn_hours,
+                int(s.weekly), int(noise), int(compute_sd))
+
+    def _fused(self) -> bool:
+        return self.kernel == "numba" and _numba is not None
 
     # -- shape -------------------------------------------------------------------------
     def _empty(self, n: int) -> BaselineState:
@@ -148,6 +358,11 @@ class SeasonalBaseline:
     def forecast(self, slot: int, day: int, out: np.ndarray | None = None) -> np.ndarray:
         """One-step forecast on the working scale for the hour with these slots."""
         st = self.state
+        if self._fused() and (out is None or out.dtype == self.dtype):
+            out = np.empty(st.n, self.dtype) if out is None else out
+            _kernel_forecast(st.level, st.season[slot], st.week[self._day(day)], out,
+                             self._scratch.get("neg"), self._p[_P_ZERO])
+            return out
         out = np.add(st.level, st.season[slot], out=out)
         out += st.week[self._day(day)]
         return out
@@ -171,6 +386,8 @@ class SeasonalBaseline:
         With ``yhat`` (and ``count_noise`` on) the count noise of that forecast is added to
         the learned extra variance.
         """
+        if self._fused() and (out is None or out.dtype == self.dtype):
+            return self._scale_fused(out, yhat)
         noise = None if yhat is None else self._count_noise(yhat, self._scratch.get("cn"))
         if noise is None:
             out = np.sqrt(self.state.var, out=out)
@@ -181,6 +398,20 @@ class SeasonalBaseline:
         if floor.shape != out.shape or floor.dtype != out.dtype:
             return np.maximum(out, self.settings.min_scale, out=out)
         return np.maximum(out, floor, out=out)
+
+    def _scale_fused(self, out: np.ndarray | None, yhat: np.ndarray | None) -> np.ndarray:
+        """``scale`` in one pass after numpy's exp; ``t = exp(-max(yhat, 0))`` is kept in the
+        scratch buffer ``cn_t`` for ``update`` (as the numpy path keeps the noise in ``cn``)."""
+        st, sc = self.state, self._scratch
+        out = np.empty(st.n, self.dtype) if out is None else out
+        noise = yhat is not None and self._count_noise_on()
+        t = st.var
+        if noise:
+            neg = sc.get("neg")
+            _kernel_neg(yhat, neg, self._p[_P_ZERO])
+            t = np.exp(neg, out=sc.get("cn_t"))
+        _kernel_scale(st.var, t, noise, self._p, out)
+        return out
 
     def warm(self) -> np.ndarray:
         """Nodes observed long enough to be alerted on, and not re-learning a new regime."""
@@ -230,22 +461,90 @@ class SeasonalBaseline:
         this hour (``self.forecast(slot, day)`` and ``self.scale(yhat=that forecast)``), to
         save the passes. Returns the boolean mask of nodes adopted as a new regime this hour.
         """
-        st, s, sc = self.state, self.settings, self._scratch
-        d = self._day(day)
-        missing = np.isnan(y, out=sc.get("missing", bool))
-        observed = np.logical_not(missing, out=sc.get("observed", bool))
-        youngest = int(st.seen.min()) if st.n else 0  # one cheap reduction gates the rare paths
-        started = False
-        if youngest == 0:
-            fresh = np.equal(st.seen, 0, out=sc.get("fresh", bool))
-            fresh &= observed
-            if fresh.any():
-                self.initialise(np.flatnonzero(fresh), y[fresh], slot, day)
-                started = True
+        sc, d = self._scratch, self._day(day)
+        started, youngest = self._start(y, slot, day)
         if started or forecast is None or scale is None:
             forecast = self.forecast(slot, d, out=sc.get("yhat"))
             scale = self.scale(out=sc.get("sd"), yhat=forecast)
-        yhat = forecast
+        if self._fused():
+            return self._update_fused(y, slot, d, forecast, scale)
+        return self._update_numpy(y, slot, d, forecast, scale, youngest)
+
+    def step(self, y: np.ndarray, slot: int, day: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Forecast, scale and learn one hour: ``(forecast, scale, adopted)``.
+
+        The same as ``f = self.forecast(slot, day); s = self.scale(yhat=f)`` (both from the
+        state before this hour) followed by ``self.update(y, slot, day, forecast=f, scale=s)``,
+        with the same results; with the numba kernel the three are one pass over the nodes
+        (plus numpy's exp) instead of three. ``forecast`` and ``scale`` are new arrays. Read
+        anything else of the state that is wanted as of before the hour (``warm()``,
+        ``state.seen``) before calling.
+        """
+        st, sc = self.state, self._scratch
+        if not self._fused() or self._any_fresh(y):
+            f = self.forecast(slot, day)
+            sd = self.scale(yhat=f)
+            return f, sd, self.update(y, slot, day, forecast=f, scale=sd)
+        f, sd, d = np.empty(st.n, self.dtype), np.empty(st.n, self.dtype), self._day(day)
+        neg = sc.get("neg")
+        _kernel_forecast(st.level, st.season[slot], st.week[d], f, neg, self._p[_P_ZERO])
+        t = np.exp(neg, out=sc.get("cn_t")) if self._count_noise_on() else None
+        return f, sd, self._run_kernel(y, f, sd, t, slot, d, compute_sd=True)
+
+    def _any_fresh(self, y: np.ndarray) -> bool:
+        """Any node never initialised (``seen == 0``) observed in ``y``?"""
+        st, sc = self.state, self._scratch
+        if not st.n or int(st.seen.min()) != 0:
+            return False
+        fresh = np.equal(st.seen, 0, out=sc.get("fresh", bool))
+        fresh &= np.logical_not(np.isnan(y, out=sc.get("missing", bool)), out=sc.get("observed", bool))
+        return bool(fresh.any())
+
+    def _start(self, y: np.ndarray, slot: int, day: int) -> tuple[bool, int]:
+        """Initialise the nodes observed for the first time; ``(any started, min(seen))``."""
+        st = self.state
+        youngest = int(st.seen.min()) if st.n else 0  # one cheap reduction gates the rare paths
+        if youngest != 0 or not self._any_fresh(y):
+            return False, youngest
+        fresh = self._scratch.get("fresh", bool)
+        self.initialise(np.flatnonzero(fresh), y[fresh], slot, day)
+        return True, youngest
+
+    def _as_input(self, y: np.ndarray) -> np.ndarray:
+        y = np.ascontiguousarray(y)
+        return y if y.dtype.kind == "f" else y.astype(np.float64)
+
+    def _arrays(self, slot: int, d: int) -> tuple[np.ndarray, ...]:
+        st = self.state
+        return (st.level, st.season[slot], st.week[d], st.var, st.seen, st.run, st.run_sum, st.relearn)
+
+    def _run_kernel(self, y: np.ndarray, yhat: np.ndarray, sd: np.ndarray, t: np.ndarray | None,
+                    slot: int, d: int, compute_sd: bool) -> np.ndarray:
+        """The fused update pass (and the adoptions it found); returns ``adopted``."""
+        st = self.state
+        young = bool(st.n) and int(st.seen.min()) < self._rate_hours
+        kernel = _kernel_update_young if young else _kernel_update
+        adopted = np.empty(st.n, dtype=bool)
+        kernel(self._as_input(y), yhat, sd, yhat if t is None else t, self._arrays(slot, d), self._p,
+               self._ip(t is not None, compute_sd), self.settings.variance_rate, adopted)
+        if adopted.any():
+            _kernel_adopt(np.flatnonzero(adopted), st.level, st.run, st.run_sum)
+        return adopted
+
+    def _update_fused(self, y: np.ndarray, slot: int, d: int, forecast: np.ndarray,
+                      scale: np.ndarray) -> np.ndarray:
+        """``update`` in one pass; the count noise is that of the last ``scale(yhat=...)``
+        (kept in ``cn_t``), as the numpy path takes it from ``cn``."""
+        t = self._scratch.buffers.get("cn_t") if self._count_noise_on() else None
+        forecast = np.ascontiguousarray(forecast, dtype=self.dtype)
+        scale = np.ascontiguousarray(scale, dtype=self.dtype)
+        return self._run_kernel(y, forecast, scale, t, slot, d, compute_sd=False)
+
+    def _update_numpy(self, y: np.ndarray, slot: int, d: int, yhat: np.ndarray,
+                      scale: np.ndarray, youngest: int) -> np.ndarray:
+        st, s, sc = self.state, self.settings, self._scratch
+        missing = np.isnan(y, out=sc.get("missing", bool))
+        observed = np.logical_not(missing, out=sc.get("observed", bool))
         resid = np.subtract(y, yhat, out=sc.get("resid"))
         if youngest == 0 or missing.any():
             np.copyto(resid, 0, where=missing)
@@ -256,7 +555,7 @@ class SeasonalBaseline:
         clipped = np.minimum(resid, bound, out=sc.get("clipped"))
         np.maximum(clipped, neg_bound, out=clipped)
         self._smooth(clipped, slot, d)
-        use = self._variance_mask(resid, bound, neg_bound, observed, youngest)
+        use = self._variance_mask(resid, clipped, observed, youngest)
         self._track_variance(clipped, use, noise, youngest)
         adopted = self._adopt(resid, bound, neg_bound, observed)
         self._count_relearn(adopted, observed)
@@ -289,8 +588,8 @@ class SeasonalBaseline:
         if s.weekly:
             st.week[d] += np.multiply(clipped, s.delta, out=tmp)
 
-    def _variance_mask(self, resid: np.ndarray, bound: np.ndarray, neg_bound: np.ndarray,
-                       observed: np.ndarray, youngest: int) -> np.ndarray:
+    def _variance_mask(self, resid: np.ndarray, clipped: np.ndarray, observed: np.ndarray,
+                       youngest: int) -> np.ndarray:
         """Nodes whose residual may move the band: observed, and inside the clip once warm.
 
         A warm node's residual beyond the clip is an event or a new regime, not noise; let
@@ -300,8 +599,9 @@ class SeasonalBaseline:
         inside it. A cold node learns from every residual, so a poor starting scale recovers.
         """
         st, sc = self.state, self._scratch
-        keep = np.less_equal(resid, bound, out=sc.get("keep", bool))
-        keep &= np.greater_equal(resid, neg_bound, out=sc.get("keep2", bool))
+        # inside the clip <=> the clip left it alone (one pass for -bound <= resid <= bound
+        # when bound >= 0; NaN is outside either way)
+        keep = np.equal(clipped, resid, out=sc.get("keep", bool))
         if youngest < max(self.settings.warmup_hours, 1):
             keep |= np.less(st.seen, max(self.settings.warmup_hours, 1), out=sc.get("cold", bool))
         keep &= observed
