@@ -75,6 +75,7 @@ def _parser() -> argparse.ArgumentParser:
         pass
     else:
         add_live_commands(sub, _common)
+    from .sink_cli import add_sink_commands; add_sink_commands(sub, _common)  # noqa: E702 - sinks, outbox
     return parser
 
 

@@ -115,6 +115,15 @@ def cmd_demo(args: argparse.Namespace) -> int:
         result = live_replay(DEMO_RECORDING, config, store, on_alert=printer, show_progress=not args.json)
     finally:
         store.close(stop_server=True)
+    if not args.json:
+        from .messages import render_demo_messages
+
+        messages = render_demo_messages(result.alerts, result.incidents)
+        out = report.console()
+        out.rule(f"{len(messages)} chat message(s) for the demo week: one per incident, then its updates")
+        for text in messages:
+            out.print(text, markup=False, highlight=False)
+            out.print()
     return present(result, DEMO_RECORDING, args, config, DEMO_LABELS, compare_own_only=True)
 
 

@@ -13,7 +13,7 @@ from typing import Any, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from . import constants
 from .errors import ConfigError
@@ -208,6 +208,103 @@ class LiveSettings(_Strict):
         return value
 
 
+class SinkRetry(_Strict):
+    """Retries of one delivery: exponential backoff with jitter, then the dead-letter stream."""
+
+    max_attempts: int = Field(6, ge=1, le=100)
+    initial_seconds: float = Field(1.0, gt=0)
+    max_seconds: float = Field(120.0, gt=0)
+    jitter: float = Field(0.2, ge=0, le=1)
+
+
+class QuietHours(_Strict):
+    """A local-time window in which only updates of at least ``min_severity`` are posted."""
+
+    start: str = Field("22:00", pattern=r"^([01]\d|2[0-3]):[0-5]\d$")
+    end: str = Field("07:00", pattern=r"^([01]\d|2[0-3]):[0-5]\d$")
+    min_severity: Literal["low", "medium", "high"] = "high"
+
+
+class SinkRoute(_Strict):
+    """Where an incident goes: the first route whose globs match its root node wins."""
+
+    name: str = Field(min_length=1)
+    match: list[str] = Field(["*"], min_length=1)
+    url_env: str | None = None
+    min_severity: Literal["low", "medium", "high"] = "low"
+    quiet: QuietHours | None = None
+
+    def matches(self, node: str) -> bool:
+        return any(fnmatch.fnmatchcase(node, pattern) for pattern in self.match)
+
+
+class SinkTarget(_Strict):
+    """One sink fed from the outbox through its own consumer group."""
+
+    name: str = Field(min_length=1, max_length=40, pattern=r"^[A-Za-z0-9_-]+$")
+    kind: Literal["webhook", "jsonl", "cloudevents", "redis_stream"]
+    enabled: bool = True
+    entries: Literal["incidents", "all"] = "incidents"
+    url_env: str | None = None
+    body_template: str = '{"text": $text}'
+    markup: Literal["plain", "markdown"] = "plain"
+    timeout_seconds: float = Field(10.0, gt=0, le=300)
+    messages_per_minute: int = Field(20, ge=1, le=100000)
+    uncertain: Literal["dead_letter", "resend"] = "dead_letter"
+    path: str | None = None
+    rotate_bytes: int = Field(64 * 1024 * 1024, ge=1024)
+    rotate_daily: bool = True
+    stream: str | None = None
+    stream_maxlen: int = Field(100000, ge=10)
+    source: str = Field("/alerter", min_length=1)
+    routes: list[SinkRoute] = []
+
+    @model_validator(mode="after")
+    def _needs(self) -> SinkTarget:
+        need = {"webhook": ("url_env",), "cloudevents": ("url_env",), "jsonl": ("path",),
+                "redis_stream": ("stream",)}[self.kind]
+        missing = [k for k in need if getattr(self, k) is None]
+        if missing:
+            raise ValueError(f"sink {self.name!r} of kind {self.kind} needs {', '.join(missing)}; "
+                             "url_env names an environment variable holding the URL, never the URL itself")
+        if self.kind == "webhook" and "$text" not in self.body_template and "$title" not in self.body_template:
+            raise ValueError(f"sink {self.name!r}: body_template {self.body_template!r} must contain $text "
+                             "(or $title), e.g. '{\"text\": $text}'")
+        return self
+
+
+class SinkSeverity(_Strict):
+    """Severity of an incident update from its total absolute excess (visits in the hour)."""
+
+    medium_excess: float = Field(1000.0, ge=0)
+    high_excess: float = Field(10000.0, ge=0)
+
+
+class DigestSettings(_Strict):
+    """The daily digest posted to the webhook sinks at a local time."""
+
+    enabled: bool = False
+    local_time: str = Field("09:00", pattern=r"^([01]\d|2[0-3]):[0-5]\d$")
+    top: int = Field(5, ge=1, le=50)
+    sinks: list[str] = []
+
+
+class SinkSettings(_Strict):
+    """Delivery from the outbox to chat webhooks, files, CloudEvents and dashboard streams."""
+
+    targets: list[SinkTarget] = []
+    retry: SinkRetry = SinkRetry()
+    severity: SinkSeverity = SinkSeverity()
+    digest: DigestSettings = DigestSettings()
+    max_id_chars: int = Field(80, ge=8, le=1000)
+    max_message_chars: int = Field(3500, ge=200, le=100000)
+    top_upstream: int = Field(3, ge=0, le=20)
+    max_members: int = Field(8, ge=1, le=200)
+    read_count: int = Field(200, ge=1, le=10000)
+    join_hours: int = Field(2, ge=1, le=48)
+    delivered_retention_hours: int = Field(336, ge=1)
+
+
 class Config(_Strict):
     """The whole configuration."""
 
@@ -219,6 +316,7 @@ class Config(_Strict):
     incidents: IncidentSettings = IncidentSettings()
     scoring: ScoringSettings = ScoringSettings()
     live: LiveSettings = LiveSettings()
+    sinks: SinkSettings = SinkSettings()
 
 
 # --- loading with line numbers -------------------------------------------------------

@@ -96,3 +96,33 @@ def partition_name(template: str, partition: int) -> str:
     'alerter:{p3}:in'
     """
     return template.replace(PARTITION_MARK, str(partition))
+
+
+# --- delivery to sinks (alerter/delivery.py) ------------------------------------------------
+
+# Prefix of each sink's consumer group on the outbox: one group per sink, so a slow or
+# failing sink keeps its own position and never holds up another sink or the engine.
+SINK_GROUP_PREFIX = "alerter-sink-"
+
+# Sorted set per partition and sink (``%`` = sink name) of idempotency keys already
+# delivered, scored by delivery time: checked before every send, so a crash between a
+# send and its XACK never posts the message twice; trimmed by age.
+DELIVERED_KEY = "alerter:{p#}:delivered:%"
+
+# Hash per partition and sink of idempotency keys whose send has started but not finished;
+# after a crash such a key is uncertain (the endpoint may or may not have it).
+INFLIGHT_KEY = "alerter:{p#}:inflight:%"
+
+# Messages a sink gave up on (attempts exhausted, rejected, or uncertain after a crash),
+# with the sink, the key and the last error: nothing is dropped silently.
+SINK_DEAD_STREAM = "alerter:{p#}:sink-dead"
+
+# Hash per partition and sink of what the rate limit held back and has not summarised yet
+# (count, hours, states, top nodes), so a fold survives a restart of the delivery loop.
+FOLD_KEY = "alerter:{p#}:fold:%"
+
+# Hash per partition, sink and UTC day (``@``) of suppression counters for the digest.
+SINK_STATS_KEY = "alerter:{p#}:sinkstats:%:@"
+
+# Placeholder for the sink name in the delivery key templates above.
+SINK_MARK = "%"

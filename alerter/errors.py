@@ -13,9 +13,11 @@ exceptions (JSON, OS, Redis, HTTP) are translated at the boundary with ``raise .
     ├── HourRangeError            an hour outside the recording's span
     ├── BadEntryError             a stream entry that cannot be decoded (goes to dead letters)
     ├── CheckpointError           a checkpoint that cannot be read back (wrong version, corrupt)
-    └── StoreError                Redis failed: the command, the server (redacted), the fix
-        ├── StoreUnavailableError Redis unreachable (connection refused, timeout, TLS)
-        └── ServerSetupError      no embedded or local redis-server could be started
+    ├── StoreError                Redis failed: the command, the server (redacted), the fix
+    │   ├── StoreUnavailableError Redis unreachable (connection refused, timeout, TLS)
+    │   └── ServerSetupError      no embedded or local redis-server could be started
+    └── SinkError                 a sink cannot be set up or refused a message for good
+        └── SinkSendError         one send failed (status, redacted target); ``retry`` says if worth retrying
 """
 
 from __future__ import annotations
@@ -82,3 +84,18 @@ class StoreUnavailableError(StoreError):
 
 class ServerSetupError(StoreError):
     """No Redis server could be started or found; the message says how to get one."""
+
+
+class SinkError(AlerterError):
+    """A sink cannot be used: a missing URL variable, a bad path or template; says the fix."""
+
+
+class SinkSendError(SinkError):
+    """One send failed. ``retryable`` for timeouts, 5xx and 429; ``retry_after`` from a 429."""
+
+    def __init__(self, message: str, *, retryable: bool, status: int | None = None,
+                 retry_after: float | None = None) -> None:
+        self.retryable = retryable
+        self.status = status
+        self.retry_after = retry_after
+        super().__init__(message)

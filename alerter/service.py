@@ -303,6 +303,10 @@ class Service:
             self._appends.append((self.names.outbox, {"type": "alert", "key": idempotency_key(alert),
                                                       "node": alert.node, "hour": hour, "kind": alert.kind,
                                                       "alert": dumps(alert)}))
+        for spill in result.spills:
+            self._appends.append((self.names.outbox, {"type": "spill",
+                                                      "key": f"spill|{spill.incident}|{spill.node}|{spill.hour}",
+                                                      "hour": hour, "spill": dumps(spill)}))
         for update in result.incidents:
             self._appends.append((self.names.outbox, {"type": "incident", "key": incident_key(update),
                                                       "hour": hour, "incident": dumps(update)}))

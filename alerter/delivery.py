@@ -1,0 +1,446 @@
+"""The delivery loop: outbox -> one consumer group per sink -> rendered messages -> sink.
+
+Per outbox entry and sink (all decisions in pure helpers, Redis calls in ``_Keys``):
+
+1. ``alert`` entries are kept (raw JSON, the last ``join_hours`` hours) to join with the
+   incident update of the same hour: the update lists member ids, the alerts carry each
+   member's numbers. After a restart a missing hour is read back from the outbox.
+2. The idempotency key is looked up in the sink's delivered-set: delivered -> just XACK.
+   A key left *in flight* by a crash is uncertain: ``uncertain: dead_letter`` parks it in
+   the sink dead-letter stream (never posted twice), ``resend`` posts it again with the
+   same Idempotency-Key for endpoints that honour it.
+3. Routing (first route whose globs match the root), minimum severity and quiet hours;
+   what they hold back is counted for the digest and acknowledged.
+4. Rate limit (token bucket per sink): over the limit, the entry is folded into a Redis
+   hash and acknowledged in the same MULTI/EXEC; the fold goes out as one summary message
+   as soon as a token is free. Nothing is dropped, memory stays bounded.
+5. Send with retries (exponential backoff with jitter, Retry-After on 429); success ->
+   delivered-set + XACK in one MULTI/EXEC; give up -> sink dead-letter stream + XACK.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import random
+import threading
+import time
+from collections import OrderedDict
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from typing import Any
+from zoneinfo import ZoneInfo
+
+from .config import Config, SinkRoute, SinkTarget
+from .constants import (DELIVERED_KEY, FOLD_KEY, INFLIGHT_KEY, SINK_DEAD_STREAM, SINK_GROUP_PREFIX, SINK_MARK,
+                        SINK_STATS_KEY, partition_name)
+from .errors import SinkError, SinkSendError
+from .incidents import IncidentUpdate
+from .messages import RenderOptions, render_fold_summary, render_update
+from .records import Alert, Upstream
+from .sinks import Outgoing, Sink, build_sink
+
+__all__ = ["TokenBucket", "backoff_seconds", "retry_wait", "severity_of", "in_quiet_hours", "pick_route",
+           "SinkWorker", "run_delivery", "sink_keys", "alert_from_json", "options_of"]
+
+log = logging.getLogger(__name__)
+SEVERITY_RANK = {"low": 0, "medium": 1, "high": 2}
+
+
+# --- pure arithmetic -------------------------------------------------------------------------
+
+@dataclass
+class TokenBucket:
+    """``per_minute`` messages per minute, bursts up to ``per_minute``; time is passed in."""
+
+    per_minute: int
+    tokens: float = -1.0
+    last: float | None = None
+
+    def available(self, now: float) -> float:
+        """Tokens at ``now`` (refilled at per_minute/60 per second, capped at per_minute)."""
+        if self.last is None:
+            return float(self.per_minute)
+        return min(float(self.per_minute), self.tokens + max(0.0, now - self.last) * self.per_minute / 60.0)
+
+    def take(self, now: float) -> bool:
+        """Spend one token if there is one."""
+        have = self.available(now)
+        self.last = now
+        if have >= 1.0:
+            self.tokens = have - 1.0
+            return True
+        self.tokens = have
+        return False
+
+
+def backoff_seconds(attempt: int, initial: float, ceiling: float, jitter: float, rand: float) -> float:
+    """Wait before retry ``attempt`` (1-based): initial * 2^(attempt-1), capped, spread by jitter.
+
+    >>> [round(backoff_seconds(a, 1.0, 10.0, 0.0, 0.5), 2) for a in (1, 2, 3, 4, 5)]
+    [1.0, 2.0, 4.0, 8.0, 10.0]
+    >>> backoff_seconds(1, 1.0, 10.0, 0.2, 0.0), backoff_seconds(1, 1.0, 10.0, 0.2, 1.0)
+    (0.8, 1.2)
+    """
+    base = min(ceiling, initial * 2.0 ** (attempt - 1))
+    return base * (1.0 + jitter * (2.0 * rand - 1.0))
+
+
+def retry_wait(backoff: float, retry_after: float | None, longest: float = 3600.0) -> float:
+    """A 429's Retry-After wins when it asks for longer than the backoff (capped at an hour).
+
+    >>> retry_wait(1.0, None), retry_wait(1.0, 5.0), retry_wait(8.0, 2.0), retry_wait(1.0, 9e9)
+    (1.0, 5.0, 8.0, 3600.0)
+    """
+    return min(longest, max(backoff, retry_after or 0.0))
+
+
+def severity_of(total_excess: float, medium: float, high: float) -> str:
+    """low / medium / high from the incident's absolute excess.
+
+    >>> [severity_of(x, 1000, 10000) for x in (10, -1500, 10000)]
+    ['low', 'medium', 'high']
+    """
+    size = abs(total_excess)
+    return "high" if size >= high else "medium" if size >= medium else "low"
+
+
+def in_quiet_hours(local: datetime, start: str, end: str) -> bool:
+    """Whether a local time falls in [start, end); the window may wrap past midnight.
+
+    >>> [in_quiet_hours(datetime(2026, 1, 1, h, 30), "22:00", "07:00") for h in (21, 22, 3, 7)]
+    [False, True, True, False]
+    """
+    minute = local.hour * 60 + local.minute
+    a = int(start[:2]) * 60 + int(start[3:])
+    b = int(end[:2]) * 60 + int(end[3:])
+    return a <= minute < b if a <= b else minute >= a or minute < b
+
+
+def pick_route(routes: list[SinkRoute], root: str) -> SinkRoute | None:
+    """The first route matching the incident's root node; no routes means one catch-all."""
+    if not routes:
+        return SinkRoute(name="default")
+    return next((r for r in routes if r.matches(root)), None)
+
+
+def alert_from_json(text: str | bytes) -> Alert:
+    """An Alert back from its outbox JSON."""
+    data = json.loads(text)
+    data["upstream"] = tuple(Upstream(**u) for u in data.get("upstream", ()))
+    return Alert(**data)
+
+
+def options_of(config: Config, target: SinkTarget) -> RenderOptions:
+    s = config.sinks
+    return RenderOptions(target.markup, s.max_id_chars, s.max_message_chars, s.top_upstream, s.max_members)
+
+
+# --- Redis names and commands ----------------------------------------------------------------
+
+@dataclass(frozen=True)
+class SinkKeys:
+    outbox: str
+    group: str
+    delivered: str
+    inflight: str
+    fold: str
+    dead: str
+    stats: str  # still has '@' for the UTC day
+
+
+def sink_keys(config: Config, sink: str, partition: int = 0) -> SinkKeys:
+    def name(t: str) -> str:
+        return partition_name(t, partition).replace(SINK_MARK, sink)
+    return SinkKeys(partition_name(config.live.names.outbox, partition), SINK_GROUP_PREFIX + sink,
+                    name(DELIVERED_KEY), name(INFLIGHT_KEY), name(FOLD_KEY), name(SINK_DEAD_STREAM),
+                    name(SINK_STATS_KEY))
+
+
+@dataclass
+class _Keys:
+    """The delivery loop's Redis commands, through the Store's error translation."""
+
+    store: Any
+    k: SinkKeys
+
+    def run(self, what: str, fn: Callable[[Any], Any]) -> Any:
+        return self.store._do(what, lambda: fn(self.store.client))
+
+    def txn(self, what: str, build: Callable[[Any], None]) -> None:
+        def go(client: Any) -> None:
+            pipe = client.pipeline(transaction=True)
+            build(pipe)
+            pipe.execute()
+        self.run(what, go)
+
+    def state(self, key: str) -> tuple[bool, bool]:
+        def go(client: Any) -> tuple[bool, bool]:
+            pipe = client.pipeline(transaction=False)
+            pipe.zscore(self.k.delivered, key)
+            pipe.hexists(self.k.inflight, key)
+            done, flying = pipe.execute()
+            return done is not None, bool(flying)
+        return self.run("ZSCORE delivered", go)
+
+
+# --- the worker ------------------------------------------------------------------------------
+
+@dataclass
+class SinkWorker:
+    """Deliver one partition's outbox to one sink. Clock, sleep and randomness are injected."""
+
+    config: Config
+    target: SinkTarget
+    store: Any
+    sink: Sink | None = None
+    partition: int = 0
+    clock: Callable[[], float] = time.time
+    sleep: Callable[[float], None] = time.sleep
+    rand: Callable[[], float] = random.random
+    stop: threading.Event = field(default_factory=threading.Event)
+    counters: dict[str, int] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        self.keys = sink_keys(self.config, self.target.name, self.partition)
+        self.redis = _Keys(self.store, self.keys)
+        self.sink = self.sink or build_sink(self.target, self.store)
+        self.bucket = TokenBucket(self.target.messages_per_minute)
+        self.opts = options_of(self.config, self.target)
+        self.joined: OrderedDict[str, dict[str, bytes]] = OrderedDict()
+        self.store.ensure_group(self.keys.outbox, self.keys.group)
+
+    def count(self, what: str, n: int = 1) -> None:
+        self.counters[what] = self.counters.get(what, 0) + n
+
+    # -- reading --------------------------------------------------------------------------
+    def run(self, drained: bool = False, block_ms: int = 1000) -> dict[str, int]:
+        """Own pending entries first (a restart), then new ones, until stopped (or drained)."""
+        start, backlog = "0", True
+        while not self.stop.is_set():
+            got = self.store.read_group(self.keys.outbox, self.keys.group, "deliver", start,
+                                        self.config.sinks.read_count, None if drained or backlog else block_ms)
+            for eid, fields in got:
+                self.handle(eid, fields)
+            self.flush_fold()
+            if backlog:  # go on through this consumer's pending list, then to new entries
+                start, backlog = (got[-1][0].decode(), True) if got else (">", False)
+            elif drained and not got:
+                break
+        return self.counters
+
+    def handle(self, eid: bytes, fields: dict[bytes, bytes]) -> None:
+        """One outbox entry to its outcome; always ends in exactly one XACK."""
+        kind = fields.get(b"type", b"").decode()
+        hour = fields.get(b"hour", b"").decode()
+        if kind == "alert":
+            self._remember(hour, fields)
+            if self.target.entries == "all":
+                return self.deliver(eid, self._alert_message(fields))
+            return self._ack(eid, "joined")
+        if kind != "incident":
+            return self._ack(eid, "ignored")
+        data = json.loads(fields[b"incident"])
+        update = IncidentUpdate(**{**data, "members": tuple(data["members"]),
+                                   "new_members": tuple(data["new_members"])})
+        route = pick_route(self.target.routes, update.root)
+        held = self._held_back(update, route)
+        if held:
+            self._stat(held)
+            return self._ack(eid, held)
+        alerts = self._alerts_for(update, eid)
+        r = render_update(update, alerts, (), self.opts)
+        msg = Outgoing(fields[b"key"].decode(), "incident", hour, r.title, r.text, r.thread, r.revision, r.state,
+                       update.root, update.to_dict(), route.url_env if route else None)
+        self.deliver(eid, msg)
+
+    def _held_back(self, update: IncidentUpdate, route: SinkRoute | None) -> str | None:
+        """Why routing holds this update back (None = send it)."""
+        if route is None:
+            return "no_route"
+        sev = self.config.sinks.severity
+        rank = SEVERITY_RANK[severity_of(update.total_excess, sev.medium_excess, sev.high_excess)]
+        if update.state != "closed" and rank < SEVERITY_RANK[route.min_severity]:
+            return "below_severity"
+        if route.quiet is not None:
+            local = datetime.fromtimestamp(self.clock(), ZoneInfo(self.config.clock.timezone))
+            if in_quiet_hours(local, route.quiet.start, route.quiet.end) and \
+                    rank < SEVERITY_RANK[route.quiet.min_severity]:
+                return "quiet_hours"
+        return None
+
+    # -- the join -------------------------------------------------------------------------
+    def _remember(self, hour: str, fields: dict[bytes, bytes]) -> None:
+        bucket = self.joined.setdefault(hour, {})
+        bucket[fields.get(b"node", b"").decode()] = fields[b"alert"]
+        while len(self.joined) > self.config.sinks.join_hours:
+            self.joined.popitem(last=False)
+
+    def _alerts_for(self, update: IncidentUpdate, eid: bytes) -> list[Alert]:
+        if update.hour not in self.joined:
+            self._backfill(update.hour, eid)
+        bucket = self.joined.get(update.hour, {})
+        return [alert_from_json(bucket[m]) for m in update.members if m in bucket]
+
+    def _backfill(self, hour: str, before: bytes) -> None:
+        """After a restart: read the hour's alerts back from the outbox, newest first."""
+        end, n = f"({before.decode()}", self.config.sinks.read_count
+        while True:
+            got = self.redis.run("XREVRANGE outbox", lambda c: c.xrevrange(self.keys.outbox, end, "-", count=n))
+            for eid, fields in got:
+                if fields.get(b"hour", b"").decode() != hour:
+                    return
+                if fields.get(b"type") == b"alert":
+                    self.joined.setdefault(hour, {}).setdefault(fields[b"node"].decode(), fields[b"alert"])
+            if len(got) < n:
+                return
+            end = f"({got[-1][0].decode()}"
+
+    def _alert_message(self, fields: dict[bytes, bytes]) -> Outgoing:
+        from .messages import render_alert
+
+        alert = alert_from_json(fields[b"alert"])
+        title, text = render_alert(alert, self.opts)
+        return Outgoing(fields[b"key"].decode(), "alert", alert.hour, title, text, alert.node, 0, alert.kind,
+                        alert.node, alert.to_dict())
+
+    # -- delivering -----------------------------------------------------------------------
+    def deliver(self, eid: bytes | None, msg: Outgoing, extra: Callable[[Any], None] | None = None) -> str:
+        """Deliver one message at most once; returns the outcome (also counted)."""
+        done, flying = self.redis.state(msg.key)
+        if done:
+            return self._finish(eid, "already_delivered", extra)
+        if flying and self.target.uncertain == "dead_letter":
+            self._dead(eid, msg, "uncertain: a send was in flight when the delivery loop stopped; not resent "
+                       "so the endpoint never gets it twice (set uncertain: resend if it honours Idempotency-Key)",
+                       "uncertain")
+            return "uncertain"
+        if eid is not None and not self.bucket.take(self.clock()):
+            self._fold(eid, msg)
+            return "folded"
+        return self._send(eid, msg, extra)
+
+    def _send(self, eid: bytes | None, msg: Outgoing, extra: Callable[[Any], None] | None) -> str:
+        retry = self.config.sinks.retry
+        assert self.sink is not None
+        for attempt in range(1, retry.max_attempts + 1):
+            self.redis.run("HSET inflight", lambda c: c.hset(self.keys.inflight, msg.key, str(self.clock())))
+            try:
+                sent = self.sink.send(msg)
+            except SinkError as exc:
+                retryable = isinstance(exc, SinkSendError) and exc.retryable
+                if not retryable or attempt == retry.max_attempts:
+                    self._dead(eid, msg, f"{exc} (attempt {attempt} of {retry.max_attempts})")
+                    return "dead"
+                wait = retry_wait(backoff_seconds(attempt, retry.initial_seconds, retry.max_seconds, retry.jitter,
+                                                  self.rand()), getattr(exc, "retry_after", None))
+                log.warning("sink retry sink=%s key=%s attempt=%d wait_s=%.2f reason=%s", self.target.name,
+                            msg.key, attempt, wait, exc)
+                self.count("retries")
+                self.sleep(wait)
+                continue
+            log.info("sink delivered sink=%s key=%s status=%s", self.target.name, msg.key, sent.status)
+            return self._finish(eid, "summary" if msg.entry_type == "fold" else "delivered", extra, msg.key)
+        return "dead"  # pragma: no cover - the loop always returns
+
+    def _finish(self, eid: bytes | None, outcome: str, extra: Callable[[Any], None] | None,
+                delivered: str | None = None) -> str:
+        """Delivered-set, in-flight cleared and XACK in one MULTI/EXEC."""
+        k, now = self.keys, self.clock()
+        keep = now - self.config.sinks.delivered_retention_hours * 3600.0
+
+        def build(pipe: Any) -> None:
+            if delivered is not None:
+                pipe.zadd(k.delivered, {delivered: now})
+                pipe.hdel(k.inflight, delivered)
+                pipe.zremrangebyscore(k.delivered, "-inf", keep)
+            if extra is not None:
+                extra(pipe)
+            if eid is not None:
+                pipe.xack(k.outbox, k.group, eid)
+        self.redis.txn("MULTI delivered+XACK", build)
+        self.count(outcome)
+        return outcome
+
+    def _dead(self, eid: bytes | None, msg: Outgoing, reason: str, outcome: str = "dead") -> None:
+        k = self.keys
+        entry = {"sink": self.target.name, "key": msg.key, "type": msg.entry_type, "hour": msg.hour,
+                 "error": reason, "entry_id": eid.decode() if eid else "-"}
+
+        def build(pipe: Any) -> None:
+            pipe.xadd(k.dead, entry)
+            pipe.hdel(k.inflight, msg.key)
+            if eid is not None:
+                pipe.xack(k.outbox, k.group, eid)
+        self.redis.txn("MULTI sink dead letter", build)
+        log.warning("sink dead-letter sink=%s key=%s reason=%s", self.target.name, msg.key, reason)
+        self.count(outcome)
+
+    def _ack(self, eid: bytes, outcome: str) -> None:
+        self.store.ack(self.keys.outbox, self.keys.group, [eid])
+        self.count(outcome)
+
+    def _stat(self, why: str) -> None:
+        day = datetime.fromtimestamp(self.clock(), UTC).strftime("%Y%m%d")
+        key = self.keys.stats.replace("@", day)
+        self.redis.txn("HINCRBY stats", lambda p: (p.hincrby(key, why, 1), p.expire(key, 3 * 86400)))
+
+    # -- folding over the rate limit ------------------------------------------------------
+    def _fold(self, eid: bytes, msg: Outgoing) -> None:
+        k, top = self.keys, self.config.sinks.digest.top
+        excess = float(msg.record.get("total_excess", msg.record.get("excess", 0.0)) or 0.0)
+        day = datetime.fromtimestamp(self.clock(), UTC).strftime("%Y%m%d")
+        stats = self.keys.stats.replace("@", day)
+
+        def build(pipe: Any) -> None:
+            pipe.hsetnx(k.fold, "id", msg.key)
+            pipe.hsetnx(k.fold, "first_hour", msg.hour)
+            pipe.hset(k.fold, "last_hour", msg.hour)
+            pipe.hincrby(k.fold, "count", 1)
+            pipe.hincrby(k.fold, f"state:{msg.state or msg.entry_type}", 1)
+            pipe.zadd(k.fold + ":top", {msg.subject or msg.key: abs(excess)}, gt=True)
+            pipe.zremrangebyrank(k.fold + ":top", 0, -(top + 1))
+            pipe.hincrby(stats, "rate_limit", 1)
+            pipe.expire(stats, 3 * 86400)
+            pipe.xack(k.outbox, k.group, eid)
+        self.redis.txn("MULTI fold+XACK", build)
+        self.count("folded")
+
+    def flush_fold(self) -> str | None:
+        """Send the held-back summary when the rate limit has a token for it."""
+        k = self.keys
+        fold = self.redis.run("HGETALL fold", lambda c: c.hgetall(k.fold))
+        if not fold or self.bucket.available(self.clock()) < 1.0:
+            return None
+        self.bucket.take(self.clock())
+        f = {a.decode(): b.decode() for a, b in fold.items()}
+        top = self.redis.run("ZRANGE fold top", lambda c: c.zrevrange(k.fold + ":top", 0, -1, withscores=True))
+        states = {s[6:]: int(v) for s, v in f.items() if s.startswith("state:")}
+        text = render_fold_summary(int(f["count"]), f["first_hour"], f["last_hour"], states,
+                                   [(n.decode(), v) for n, v in top], self.target.messages_per_minute, self.opts)
+        msg = Outgoing(f"fold|{f['id']}", "fold", f["last_hour"], "held back", text, record={"count": int(f["count"])})
+
+        def drop(pipe: Any) -> None:
+            pipe.delete(k.fold, k.fold + ":top")
+        done, flying = self.redis.state(msg.key)
+        if done or (flying and self.target.uncertain == "dead_letter"):
+            self.redis.txn("DEL fold", drop)
+            return "already_delivered" if done else "uncertain"
+        return self._send(None, msg, drop)
+
+
+def run_delivery(config: Config, store: Any, *, drained: bool = False, partitions: list[int] | None = None,
+                 stop: threading.Event | None = None) -> list[SinkWorker]:
+    """One thread per (enabled sink, partition): a slow sink never holds up another."""
+    stop = stop or threading.Event()
+    parts = partitions if partitions is not None else list(range(config.live.partitions))
+    workers = [SinkWorker(config, t, store, partition=p, stop=stop)
+               for t in config.sinks.targets if t.enabled for p in parts]
+    threads = [threading.Thread(target=w.run, kwargs={"drained": drained}, name=f"sink-{w.target.name}")
+               for w in workers]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    return workers
