@@ -75,7 +75,9 @@ def _parser() -> argparse.ArgumentParser:
         pass
     else:
         add_live_commands(sub, _common)
-    from .sink_cli import add_sink_commands; add_sink_commands(sub, _common)  # noqa: E702 - sinks, outbox
+    from .sink_cli import add_sink_commands  # sinks, outbox
+
+    add_sink_commands(sub, _common)
     return parser
 
 

@@ -33,11 +33,20 @@ from typing import Any
 from zoneinfo import ZoneInfo
 
 from .config import Config, SinkRoute, SinkTarget
-from .constants import (DELIVERED_KEY, FOLD_KEY, INFLIGHT_KEY, SINK_DEAD_STREAM, SINK_GROUP_PREFIX, SINK_MARK,
-                        SINK_STATS_KEY, partition_name)
+from .constants import (
+    DELIVERED_KEY,
+    FOLD_KEY,
+    INFLIGHT_KEY,
+    SINK_DEAD_STREAM,
+    SINK_GROUP_PREFIX,
+    SINK_MARK,
+    SINK_STATS_KEY,
+    partition_name,
+)
 from .errors import SinkError, SinkSendError
+from .folding import TokenBucket, flush_fold, fold_entry
 from .incidents import IncidentUpdate
-from .messages import RenderOptions, render_fold_summary, render_update
+from .messages import RenderOptions, render_update
 from .records import Alert, Upstream
 from .sinks import Outgoing, Sink, build_sink
 
@@ -49,31 +58,6 @@ SEVERITY_RANK = {"low": 0, "medium": 1, "high": 2}
 
 
 # --- pure arithmetic -------------------------------------------------------------------------
-
-@dataclass
-class TokenBucket:
-    """``per_minute`` messages per minute, bursts up to ``per_minute``; time is passed in."""
-
-    per_minute: int
-    tokens: float = -1.0
-    last: float | None = None
-
-    def available(self, now: float) -> float:
-        """Tokens at ``now`` (refilled at per_minute/60 per second, capped at per_minute)."""
-        if self.last is None:
-            return float(self.per_minute)
-        return min(float(self.per_minute), self.tokens + max(0.0, now - self.last) * self.per_minute / 60.0)
-
-    def take(self, now: float) -> bool:
-        """Spend one token if there is one."""
-        have = self.available(now)
-        self.last = now
-        if have >= 1.0:
-            self.tokens = have - 1.0
-            return True
-        self.tokens = have
-        return False
-
 
 def backoff_seconds(attempt: int, initial: float, ceiling: float, jitter: float, rand: float) -> float:
     """Wait before retry ``attempt`` (1-based): initial * 2^(attempt-1), capped, spread by jitter.
@@ -168,7 +152,8 @@ class _Keys:
     def run(self, what: str, fn: Callable[[Any], Any]) -> Any:
         return self.store._do(what, lambda: fn(self.store.client))
 
-    def txn(self, what: str, build: Callable[[Any], None]) -> None:
+    def txn(self, what: str, build: Callable[[Any], object]) -> None:
+        """Queue ``build``'s commands on a MULTI/EXEC pipeline (its return value is ignored)."""
         def go(client: Any) -> None:
             pipe = client.pipeline(transaction=True)
             build(pipe)
@@ -237,10 +222,13 @@ class SinkWorker:
         if kind == "alert":
             self._remember(hour, fields)
             if self.target.entries == "all":
-                return self.deliver(eid, self._alert_message(fields))
-            return self._ack(eid, "joined")
+                self.deliver(eid, self._alert_message(fields))
+            else:
+                self._ack(eid, "joined")
+            return
         if kind != "incident":
-            return self._ack(eid, "ignored")
+            self._ack(eid, "ignored")
+            return
         data = json.loads(fields[b"incident"])
         update = IncidentUpdate(**{**data, "members": tuple(data["members"]),
                                    "new_members": tuple(data["new_members"])})
@@ -248,7 +236,8 @@ class SinkWorker:
         held = self._held_back(update, route)
         if held:
             self._stat(held)
-            return self._ack(eid, held)
+            self._ack(eid, held)
+            return
         alerts = self._alerts_for(update, eid)
         r = render_update(update, alerts, (), self.opts)
         msg = Outgoing(fields[b"key"].decode(), "incident", hour, r.title, r.text, r.thread, r.revision, r.state,
@@ -287,8 +276,10 @@ class SinkWorker:
         """After a restart: read the hour's alerts back from the outbox, newest first."""
         end, n = f"({before.decode()}", self.config.sinks.read_count
         while True:
-            got = self.redis.run("XREVRANGE outbox", lambda c: c.xrevrange(self.keys.outbox, end, "-", count=n))
-            for eid, fields in got:
+            def page(c: Any, end: str = end) -> Any:
+                return c.xrevrange(self.keys.outbox, end, "-", count=n)
+            got = self.redis.run("XREVRANGE outbox", page)
+            for _eid, fields in got:
                 if fields.get(b"hour", b"").decode() != hour:
                     return
                 if fields.get(b"type") == b"alert":
@@ -317,7 +308,7 @@ class SinkWorker:
                        "uncertain")
             return "uncertain"
         if eid is not None and not self.bucket.take(self.clock()):
-            self._fold(eid, msg)
+            fold_entry(self, eid, msg)  # over the rate limit (folding.py)
             return "folded"
         return self._send(eid, msg, extra)
 
@@ -387,47 +378,9 @@ class SinkWorker:
         self.redis.txn("HINCRBY stats", lambda p: (p.hincrby(key, why, 1), p.expire(key, 3 * 86400)))
 
     # -- folding over the rate limit ------------------------------------------------------
-    def _fold(self, eid: bytes, msg: Outgoing) -> None:
-        k, top = self.keys, self.config.sinks.digest.top
-        excess = float(msg.record.get("total_excess", msg.record.get("excess", 0.0)) or 0.0)
-        day = datetime.fromtimestamp(self.clock(), UTC).strftime("%Y%m%d")
-        stats = self.keys.stats.replace("@", day)
-
-        def build(pipe: Any) -> None:
-            pipe.hsetnx(k.fold, "id", msg.key)
-            pipe.hsetnx(k.fold, "first_hour", msg.hour)
-            pipe.hset(k.fold, "last_hour", msg.hour)
-            pipe.hincrby(k.fold, "count", 1)
-            pipe.hincrby(k.fold, f"state:{msg.state or msg.entry_type}", 1)
-            pipe.zadd(k.fold + ":top", {msg.subject or msg.key: abs(excess)}, gt=True)
-            pipe.zremrangebyrank(k.fold + ":top", 0, -(top + 1))
-            pipe.hincrby(stats, "rate_limit", 1)
-            pipe.expire(stats, 3 * 86400)
-            pipe.xack(k.outbox, k.group, eid)
-        self.redis.txn("MULTI fold+XACK", build)
-        self.count("folded")
-
     def flush_fold(self) -> str | None:
         """Send the held-back summary when the rate limit has a token for it."""
-        k = self.keys
-        fold = self.redis.run("HGETALL fold", lambda c: c.hgetall(k.fold))
-        if not fold or self.bucket.available(self.clock()) < 1.0:
-            return None
-        self.bucket.take(self.clock())
-        f = {a.decode(): b.decode() for a, b in fold.items()}
-        top = self.redis.run("ZRANGE fold top", lambda c: c.zrevrange(k.fold + ":top", 0, -1, withscores=True))
-        states = {s[6:]: int(v) for s, v in f.items() if s.startswith("state:")}
-        text = render_fold_summary(int(f["count"]), f["first_hour"], f["last_hour"], states,
-                                   [(n.decode(), v) for n, v in top], self.target.messages_per_minute, self.opts)
-        msg = Outgoing(f"fold|{f['id']}", "fold", f["last_hour"], "held back", text, record={"count": int(f["count"])})
-
-        def drop(pipe: Any) -> None:
-            pipe.delete(k.fold, k.fold + ":top")
-        done, flying = self.redis.state(msg.key)
-        if done or (flying and self.target.uncertain == "dead_letter"):
-            self.redis.txn("DEL fold", drop)
-            return "already_delivered" if done else "uncertain"
-        return self._send(None, msg, drop)
+        return flush_fold(self)
 
 
 def run_delivery(config: Config, store: Any, *, drained: bool = False, partitions: list[int] | None = None,

@@ -69,15 +69,16 @@ def post_digest(config: Config, store: Any, now: datetime | None = None, partiti
             continue
         worker = SinkWorker(config, target, store, partition=partition)
         for day in (now, since):
-            stats = store._do("HGETALL", lambda d=day: store.client.hgetall(
-                worker.keys.stats.replace("@", d.strftime("%Y%m%d"))))
+            stats = store._do("HGETALL", lambda d=day, w=worker: store.client.hgetall(
+                w.keys.stats.replace("@", d.strftime("%Y%m%d"))))
             for k, v in stats.items():
                 figures.suppressed[k.decode()] = figures.suppressed.get(k.decode(), 0) + int(v)
         text = render_digest_text(since.strftime("%Y-%m-%dT%H:%M:%SZ"), now.strftime("%Y-%m-%dT%H:%M:%SZ"),
                                   figures.incidents, figures.states, figures.top, figures.suppressed,
                                   options_of(config, target))
-        msg = Outgoing(f"digest|{target.name}|{now.strftime('%Y%m%d')}", "digest", now.strftime("%Y-%m-%dT%H:00:00Z"),
-                       "daily digest", text, record={"incidents": figures.incidents})
+        msg = Outgoing(f"digest|{target.name}|{now.strftime('%Y%m%d')}", "digest",
+                       now.strftime("%Y-%m-%dT%H:00:00Z"), "daily digest", text,
+                       record={"incidents": figures.incidents})
         out[target.name] = worker.deliver(None, msg)
         figures.suppressed = {}
     return out

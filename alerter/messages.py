@@ -200,7 +200,7 @@ def render_update(update: IncidentUpdate, alerts: Sequence[Alert] = (), spills: 
     if update.new_members and update.revision > 1:
         lines.append("new nodes: " + ", ".join(_esc(m, opts) for m in update.new_members[: opts.max_members]))
     if update.state == "closed":
-        lines.append(f"closed: no node beyond its band for the quiet period; last members: "
+        lines.append("closed: no node beyond its band for the quiet period; last members: "
                      + ", ".join(_esc(m, opts) for m in update.members[: opts.max_members]))
     else:
         lines.extend(_members_block(update, alerts, opts))

@@ -10,17 +10,18 @@ import json
 import threading
 import time
 from collections.abc import Callable
-from typing import Any
+from typing import Any, cast
 
 from .config import Config, load_config
 from .constants import partition_name
-from .delivery import run_delivery, sink_keys
+from .delivery import SinkKeys, run_delivery, sink_keys
+from .digest import start_digest_job
 from .errors import AlerterError, SinkError
 from .incidents import IncidentUpdate
 from .messages import render_update
 from .records import Alert, Upstream
 from .sinks import Outgoing, build_sink
-from .store import connect
+from .store import Store, connect
 
 __all__ = ["add_sink_commands", "sample_message"]
 
@@ -67,12 +68,16 @@ def cmd_sinks_run(args: argparse.Namespace) -> int:
         raise AlerterError("no sinks configured: add entries under sinks.targets in the YAML config")
     store = connect(config.live, args.redis)
     stop = threading.Event()
+    # the daily digest runs beside a long-lived delivery process, not a drain-and-exit one
+    digest = start_digest_job(config, store) if config.sinks.digest.enabled and not args.until_drained else None
     try:
         workers = run_delivery(config, store, drained=args.until_drained, stop=stop)
     except KeyboardInterrupt:
         stop.set()
         raise
     finally:
+        if digest is not None:
+            digest.shutdown(wait=False)
         store.close()
     rows = {f"{w.target.name}/p{w.partition}": w.counters for w in workers}
     print(json.dumps(rows, sort_keys=True) if args.json else
@@ -84,7 +89,8 @@ def cmd_sinks_test(args: argparse.Namespace) -> int:
     config = load_config(args.config)
     if not config.sinks.targets:
         raise AlerterError("no sinks configured: add entries under sinks.targets in the YAML config")
-    store = connect(config.live, args.redis) if any(t.kind == "redis_stream" for t in config.sinks.targets) else None
+    needs_redis = any(t.kind == "redis_stream" for t in config.sinks.targets)
+    store = connect(config.live, args.redis) if needs_redis else None
     msg, results, failed = sample_message(), {}, 0
     for target in config.sinks.targets:
         try:
@@ -99,7 +105,8 @@ def cmd_sinks_test(args: argparse.Namespace) -> int:
         print(json.dumps(results, sort_keys=True))
     else:
         for name, r in results.items():
-            print(f"{name}: " + (f"ok status={r['status']} answer={r['answer']!r}" if r["ok"] else f"FAILED {r['error']}"))
+            outcome = f"ok status={r['status']} answer={r['answer']!r}" if r["ok"] else f"FAILED {r['error']}"
+            print(f"{name}: " + outcome)
     return 1 if failed else 0
 
 
@@ -109,28 +116,36 @@ def _states(config: Config, store: Any, partition: int, entries: list[tuple[byte
     out: dict[bytes, dict[str, str]] = {eid: {} for eid, _ in entries}
     for target in config.sinks.targets:
         k = sink_keys(config, target.name, partition)
-        client = store.client
-        groups = {g["name"].decode(): g for g in store._do("XINFO GROUPS", lambda: client.xinfo_groups(k.outbox))}
-        group = groups.get(k.group)
-        pending = set()
-        if group is not None and group["pending"]:
-            got = store._do("XPENDING", lambda: client.xpending_range(k.outbox, k.group, "-", "+", 10000))
-            pending = {p["message_id"] for p in got}
-        dead = {f[b"key"] for _, f in store._do("XREVRANGE dead", lambda: client.xrevrange(k.dead, count=10000))}
-        last = group["last-delivered-id"] if group else b"0-0"
-        for eid, fields in entries:
-            key = fields.get(b"key", b"")
-            if store._do("ZSCORE", lambda: client.zscore(k.delivered, key)) is not None:
-                state = "delivered"
-            elif key in dead:
-                state = "dead"
-            elif eid in pending:
-                state = "pending"
-            elif group is not None and _le(eid, last):
-                state = "acked"
-            else:
-                state = "unread"
+        for eid, state in _sink_states(store, k, entries).items():
             out[eid][target.name] = state
+    return out
+
+
+def _sink_states(store: Any, k: SinkKeys, entries: list[tuple[bytes, dict[bytes, bytes]]]) -> dict[bytes, str]:
+    """The delivery state of each entry for one sink (its Redis names in ``k``)."""
+    client = store.client
+    groups = {g["name"].decode(): g for g in store._do("XINFO GROUPS", lambda: client.xinfo_groups(k.outbox))}
+    group = groups.get(k.group)
+    pending = set()
+    if group is not None and group["pending"]:
+        got = store._do("XPENDING", lambda: client.xpending_range(k.outbox, k.group, "-", "+", 10000))
+        pending = {p["message_id"] for p in got}
+    dead = {f[b"key"] for _, f in store._do("XREVRANGE dead", lambda: client.xrevrange(k.dead, count=10000))}
+    last = group["last-delivered-id"] if group else b"0-0"
+    out: dict[bytes, str] = {}
+    for eid, fields in entries:
+        key = fields.get(b"key", b"")
+        if store._do("ZSCORE", lambda key=key: client.zscore(k.delivered, key)) is not None:
+            state = "delivered"
+        elif key in dead:
+            state = "dead"
+        elif eid in pending:
+            state = "pending"
+        elif group is not None and _le(eid, last):
+            state = "acked"
+        else:
+            state = "unread"
+        out[eid] = state
     return out
 
 
@@ -141,18 +156,28 @@ def _le(a: bytes, b: bytes) -> bool:
     return key(a) <= key(b)
 
 
+def _recent_entries(store: Store, stream: str, limit: int) -> list[tuple[bytes, dict[bytes, bytes]]]:
+    """The last ``limit`` (at least one) entries of ``stream``, oldest first.
+
+    The client runs with ``decode_responses`` off, so ids and fields are bytes; the redis
+    stubs type the reply for every client mode at once, hence the cast.
+    """
+    reply = store._do("XREVRANGE outbox", lambda: store.client.xrevrange(stream, count=max(1, limit)))
+    return list(reversed(cast(list[tuple[bytes, dict[bytes, bytes]]], reply)))
+
+
 def cmd_outbox(args: argparse.Namespace) -> int:
     config = load_config(args.config)
     store = connect(config.live, args.redis)
     try:
         stream = partition_name(config.live.names.outbox, args.partition)
-        entries = list(reversed(store._do("XREVRANGE outbox",
-                                          lambda: store.client.xrevrange(stream, count=max(1, args.limit)))))
+        entries = _recent_entries(store, stream, args.limit)
         states = _states(config, store, args.partition, entries)
     finally:
         store.close()
-    rows = [{"id": eid.decode(), "type": f.get(b"type", b"").decode(), "key": f.get(b"key", b"").decode(),
-             "hour": f.get(b"hour", b"").decode(), "sinks": states[eid]} for eid, f in entries]
+    rows: list[dict[str, Any]] = [
+        {"id": eid.decode(), "type": f.get(b"type", b"").decode(), "key": f.get(b"key", b"").decode(),
+         "hour": f.get(b"hour", b"").decode(), "sinks": states[eid]} for eid, f in entries]
     if args.json:
         print(json.dumps(rows, sort_keys=True, ensure_ascii=False))
     else:

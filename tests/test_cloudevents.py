@@ -31,32 +31,60 @@ def _format_ok(fmt: str, value: str) -> bool:
     return " " not in value  # uri-reference: anything without spaces (a relative path is fine)
 
 
+def _type_error(value: Any, schema: dict[str, Any], where: str) -> str | None:
+    """The ``type`` keyword (a bool is not a number); None when it matches or is absent."""
+    if "type" not in schema:
+        return None
+    kinds = schema["type"] if isinstance(schema["type"], list) else [schema["type"]]
+    if any(isinstance(value, TYPES[k]) and not (k == "number" and isinstance(value, bool)) for k in kinds):
+        return None
+    return f"{where}: {value!r} is not of type {kinds}"
+
+
+def _string_errors(value: str, schema: dict[str, Any], where: str) -> list[str]:
+    """``minLength``, ``pattern`` and ``format`` of a string."""
+    errors: list[str] = []
+    if len(value) < schema.get("minLength", 0):
+        errors.append(f"{where}: shorter than {schema['minLength']}")
+    if "pattern" in schema and not re.search(schema["pattern"], value):
+        errors.append(f"{where}: {value!r} does not match {schema['pattern']}")
+    if "format" in schema and not _format_ok(schema["format"], value):
+        errors.append(f"{where}: {value!r} is not a {schema['format']}")
+    return errors
+
+
+def _member_errors(key: str, value: Any, schema: dict[str, Any], where: str) -> list[str]:
+    """One object member against ``properties``, then ``patternProperties``, then ``additionalProperties``."""
+    if key in schema.get("properties", {}):
+        return validate(value, schema["properties"][key], f"{where}.{key}")
+    sub = next((s for p, s in schema.get("patternProperties", {}).items() if re.match(p, key)), None)
+    if sub is not None:
+        return validate(value, sub, f"{where}.{key}")
+    if schema.get("additionalProperties") is False:
+        return [f"{where}: unexpected member {key}"]
+    return []
+
+
+def _object_errors(value: dict[str, Any], schema: dict[str, Any], where: str) -> list[str]:
+    """``required`` members, then each member in order."""
+    errors = [f"{where}: missing {k}" for k in schema.get("required", []) if k not in value]
+    for k, v in value.items():
+        errors += _member_errors(k, v, schema, where)
+    return errors
+
+
 def validate(value: Any, schema: dict[str, Any], where: str = "$") -> list[str]:
     """The subset of JSON Schema the CloudEvents file uses (see data/README-cloudevents.md)."""
+    wrong_type = _type_error(value, schema, where)
+    if wrong_type is not None:
+        return [wrong_type]
     errors: list[str] = []
-    if "type" in schema:
-        kinds = schema["type"] if isinstance(schema["type"], list) else [schema["type"]]
-        if not any(isinstance(value, TYPES[k]) and not (k == "number" and isinstance(value, bool)) for k in kinds):
-            return [f"{where}: {value!r} is not of type {kinds}"]
     if "const" in schema and value != schema["const"]:
         errors.append(f"{where}: {value!r} != {schema['const']!r}")
     if isinstance(value, str):
-        if len(value) < schema.get("minLength", 0):
-            errors.append(f"{where}: shorter than {schema['minLength']}")
-        if "pattern" in schema and not re.search(schema["pattern"], value):
-            errors.append(f"{where}: {value!r} does not match {schema['pattern']}")
-        if "format" in schema and not _format_ok(schema["format"], value):
-            errors.append(f"{where}: {value!r} is not a {schema['format']}")
+        errors += _string_errors(value, schema, where)
     if isinstance(value, dict):
-        errors += [f"{where}: missing {k}" for k in schema.get("required", []) if k not in value]
-        for k, v in value.items():
-            if k in schema.get("properties", {}):
-                errors += validate(v, schema["properties"][k], f"{where}.{k}")
-            elif any(re.match(p, k) for p in schema.get("patternProperties", {})):
-                sub = next(s for p, s in schema["patternProperties"].items() if re.match(p, k))
-                errors += validate(v, sub, f"{where}.{k}")
-            elif schema.get("additionalProperties") is False:
-                errors.append(f"{where}: unexpected member {k}")
+        errors += _object_errors(value, schema, where)
     return errors
 
 

@@ -5,8 +5,17 @@ from __future__ import annotations
 import pytest
 
 from alerter.incidents import IncidentUpdate
-from alerter.messages import (ELLIPSIS, ESTIMATE_LINE, WORD_JOINER, RenderOptions, escape, human_number,
-                              percent_above, render_demo_messages, render_update)
+from alerter.messages import (
+    ELLIPSIS,
+    ESTIMATE_LINE,
+    WORD_JOINER,
+    RenderOptions,
+    escape,
+    human_number,
+    percent_above,
+    render_demo_messages,
+    render_update,
+)
 from alerter.records import Alert, SpillWarning, Upstream
 
 H = "2026-11-20T10:00:00Z"
