@@ -8,6 +8,7 @@ from rich.console import Console
 from rich.table import Table
 
 from .incidents import IncidentUpdate
+from .messages import human_number, percent_above
 from .records import Alert, NodeHour, SpillWarning, Upstream
 from .scoring import Score
 
@@ -19,21 +20,12 @@ ESTIMATE_NOTE = ("Upstream shares and kinds are estimates from how counts moved 
 
 
 def human(value: float | None) -> str:
-    """Round a count for people: 950, 1.2k, 3.4M.
+    """A count rounded for people (the chat messages' rounding); ``-`` for no value.
 
     >>> human(1234.0), human(950.0), human(3_400_000.0), human(None)
     ('1.2k', '950', '3.4M', '-')
     """
-    if value is None:
-        return "-"
-    size = abs(value)
-    if size >= 1e6:
-        return f"{value / 1e6:.1f}M"
-    if size >= 1e4:
-        return f"{value / 1e3:.0f}k"
-    if size >= 1e3:
-        return f"{value / 1e3:.1f}k"
-    return f"{value:.0f}"
+    return "-" if value is None else human_number(value)
 
 
 def alerts_table(alerts: Sequence[Alert], limit: int = 40) -> Table:
@@ -46,7 +38,7 @@ def alerts_table(alerts: Sequence[Alert], limit: int = 40) -> Table:
                           ("likely upstream (est.)", "left")):
         table.add_column(name, justify=justify)  # type: ignore[arg-type]
     for a in alerts[:limit]:
-        change = f"{(a.observed - a.expected) / max(a.expected, 1.0) * 100:+.0f}%"
+        change = percent_above(a.observed, a.expected)
         table.add_row(a.hour, a.node, a.kind, human(a.observed), human(a.expected),
                       f"{human(a.band_low)}..{human(a.band_high)}", change, f"{a.score:+.1f}",
                       a.origin or "-", upstream_text(a.upstream))
