@@ -21,6 +21,11 @@ from .errors import ConfigError
 DEFAULT_CONFIG = Path(__file__).resolve().parent.parent / "config" / "default.yaml"
 
 
+def matches_any(node: str, patterns: list[str]) -> bool:
+    """Whether a node id matches one of the globs (case-sensitive, ``*`` ``?`` ``[...]``)."""
+    return any(fnmatch.fnmatchcase(node, pattern) for pattern in patterns)
+
+
 class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
@@ -98,7 +103,7 @@ class RuleOverride(_Strict):
     drop: PartialDirectionRule = PartialDirectionRule()
 
     def matches(self, node: str) -> bool:
-        return any(fnmatch.fnmatchcase(node, pattern) for pattern in self.match)
+        return matches_any(node, self.match)
 
 
 class RuleSettings(_Strict):
@@ -142,7 +147,7 @@ class CapacityRule(_Strict):
     visits_per_hour: float = Field(gt=0)
 
     def matches(self, node: str) -> bool:
-        return any(fnmatch.fnmatchcase(node, pattern) for pattern in self.match)
+        return matches_any(node, self.match)
 
 
 class IncidentSettings(_Strict):
@@ -235,7 +240,7 @@ class SinkRoute(_Strict):
     quiet: QuietHours | None = None
 
     def matches(self, node: str) -> bool:
-        return any(fnmatch.fnmatchcase(node, pattern) for pattern in self.match)
+        return matches_any(node, self.match)
 
 
 class SinkTarget(_Strict):
