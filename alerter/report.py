@@ -109,6 +109,10 @@ def graph_table(node: str, rows: Sequence[tuple[int, str, str, float, int]], dir
     return table
 
 
+def _count(value: float) -> str:
+    return "n/a" if value != value else f"{value:.0f}"
+
+
 def _pct(value: float) -> str:
     return "n/a" if value != value else f"{value:.2f}"
 
@@ -134,9 +138,10 @@ def score_tables(score: Score, own_only: Score | None = None) -> list[Table]:
     if own_only is not None:
         summ.add_column("baseline alone", justify="right")
     for name, value in score.summary.items():
-        cells = [name.replace("_", " "), _pct(value)]
+        show = _count if name == "incidents" else _pct
+        cells = [name.replace("_", " "), show(value)]
         if own_only is not None:
-            cells.append(_pct(own_only.summary.get(name, float("nan"))))
+            cells.append(show(own_only.summary.get(name, float("nan"))))
         summ.add_row(*cells)
     return [prec, rec, summ]
 
