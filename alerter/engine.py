@@ -26,14 +26,16 @@ import numpy as np
 from .baseline import SeasonalBaseline
 from .config import Config
 from .flows import Attribution
-from .incidents import IncidentTracker, IncidentUpdate
+from .incidents import Active, IncidentTracker, IncidentUpdate
 from .joint import JointModel
 from .nodes import NodeIndex
 from .records import Alert, SpillWarning, Upstream
 from .rules import RuleBook
 from .timeaxis import HOUR, format_hour, hour_index, local_slots
 
-__all__ = ["Engine", "StepResult"]
+__all__ = ["Engine", "Foreign", "StepResult"]
+
+_NEVER = np.iinfo(np.int64).min  # last_beyond of a node never beyond its band
 
 
 @dataclass
@@ -54,6 +56,21 @@ class StepResult:
     alerts: list[Alert] = field(default_factory=list)
     incidents: list[IncidentUpdate] = field(default_factory=list)
     spills: list[SpillWarning] = field(default_factory=list)
+    suppressed: dict[str, int] = field(default_factory=dict)  # rule met, held back by cooldown
+
+
+@dataclass(frozen=True)
+class Foreign:
+    """Nodes owned by other partitions (ghosts), with their owners' figures for the hour.
+
+    A partitioned worker holds the links into its own nodes; their sources may live in
+    another partition. For those ghost nodes the owner's observed count (in ``x``) and own
+    seasonal expectation (``own``) are used as given, so the flow model sees exactly what a
+    single worker would; a ghost never alerts and joins no incident.
+    """
+
+    mask: np.ndarray  # (n,) bool: ghost nodes
+    own: np.ndarray  # (n,) the owners' seasonal expectation (used where mask)
 
 
 class Engine:
@@ -82,6 +99,7 @@ class Engine:
         inc = config.incidents
         self.incidents = IncidentTracker(inc.link_min_share, inc.adjacent_hours, inc.quiet_hours)
         self.prev_excess = np.zeros(0)
+        self.last_beyond = {d: np.zeros(0, np.int64) for d in ("surge", "drop")}
         self.last_hour: datetime | None = None
 
     @property
@@ -121,6 +139,10 @@ class Engine:
             grown = np.zeros(n)
             grown[: self.prev_excess.shape[0]] = self.prev_excess
             self.prev_excess = grown
+            for d, old in self.last_beyond.items():
+                ticks = np.full(n, _NEVER, np.int64)
+                ticks[: old.shape[0]] = old
+                self.last_beyond[d] = ticks
 
     def ensure_nodes(self) -> None:
         """Size the per-node state to every id interned in ``self.nodes`` so far.
@@ -142,8 +164,14 @@ class Engine:
         """Close one hour given ``{node: count}``; absent nodes are missing."""
         return self.step_array(hour, self.counts_array(counts))
 
-    def step_array(self, hour: datetime, x: np.ndarray) -> StepResult:
-        """Close one hour given dense counts indexed like ``self.nodes`` (NaN missing)."""
+    def step_array(self, hour: datetime, x: np.ndarray, *, foreign: Foreign | None = None,
+                   track: bool = True) -> StepResult:
+        """Close one hour given dense counts indexed like ``self.nodes`` (NaN missing).
+
+        ``foreign`` marks ghost nodes of other partitions (see :class:`Foreign`);
+        ``track=False`` leaves incidents and spill-over warnings to the caller (a
+        partitioned run groups all partitions' alerts in one place with :meth:`track`).
+        """
         if self.last_hour is not None and hour <= self.last_hour:
             raise ValueError(f"hour {format_hour(hour)} is not after {format_hour(self.last_hour)}")
         slot, day = local_slots(hour, self.tz)
@@ -154,6 +182,8 @@ class Engine:
         sd32 = b_model.scale(yhat=y_own)
         sd = sd32.astype(float)
         own = np.maximum(b_model.from_working(y_own.astype(float)), 0.0)
+        if foreign is not None:
+            own = np.where(foreign.mask, foreign.own, own)
         flows_on = self.config.flows.enabled
         joint = own + self.joint.forecast(self.prev_excess, tick) if flows_on else own.copy()
         np.maximum(joint, 0.0, out=joint)
@@ -164,6 +194,8 @@ class Engine:
         y_up, y_dn = b_model.to_working(exp_up).astype(float), b_model.to_working(exp_dn).astype(float)
         observed = ~np.isnan(x)
         warm = b_model.warm() & observed
+        if foreign is not None:
+            warm &= ~foreign.mask
         with np.errstate(invalid="ignore"):
             score, score_dn = (y - y_up) / sd, (y - y_dn) / sd
         low = np.maximum(b_model.from_working(y_dn - self.rules.z("drop") * sd), 0.0)
@@ -175,13 +207,33 @@ class Engine:
         self.prev_excess = np.where(observed, x - own, 0.0)
         result = StepResult(hour, x, joint, low, high, score, warm, adopted, own, imputed, attribution)
         result.alerts = self._alerts(result, up, down, (exp_up, exp_dn), (score, score_dn))
-        active = {(self.nodes.ids[i], d) for d in ("surge", "drop")
-                  for i in np.flatnonzero(self.rules.active[d]).tolist()}
-        result.incidents = self.incidents.step(tick, format_hour(hour), result.alerts, active)
-        if flows_on and self.config.incidents.capacity and self.incidents.open:
-            result.spills = self._spills(hour, tick)
+        result.suppressed = {d: int(self.rules.suppressed[d].sum()) for d in ("surge", "drop")}
+        for d, ticks in self.last_beyond.items():
+            ticks[self.rules.active[d]] = tick
+        if track:
+            result.incidents, result.spills = self.track(hour, result.alerts, self._beyond_since)
         self.last_hour = hour
         return result
+
+    def _beyond_since(self, node: str, direction: str) -> int | None:
+        i = self.nodes.get(node) if node in self.nodes else -1
+        ticks = self.last_beyond[direction]
+        t = int(ticks[i]) if 0 <= i < ticks.shape[0] else _NEVER
+        return None if t == _NEVER else t
+
+    def track(self, hour: datetime, alerts: list[Alert],
+              active: Active) -> tuple[list[IncidentUpdate], list[SpillWarning]]:
+        """Group one hour's alerts into incidents; spill-over warnings of the open ones.
+
+        ``step_array`` calls this itself unless ``track=False``; ``active`` says who is
+        beyond the band (see :meth:`IncidentTracker.step`).
+        """
+        tick = hour_index(hour)
+        updates = self.incidents.step(tick, format_hour(hour), alerts, active)
+        spills: list[SpillWarning] = []
+        if self.config.flows.enabled and self.config.incidents.capacity and self.incidents.open:
+            spills = self._spills(hour, tick)
+        return updates, spills
 
     def _impute(self, x: np.ndarray, own: np.ndarray, attribution: Attribution | None) -> np.ndarray:
         """Fill missing counts of known nodes: own baseline plus neighbours' inflow."""

@@ -104,6 +104,7 @@ Public API
 from __future__ import annotations
 
 import os
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -469,6 +470,22 @@ class FlowLearner:
         self._buf: dict[str, np.ndarray] = {}
         self._seg: Segments | None = None
         self._tables: dict[str, np.ndarray] = {}
+        self.source_totals: Callable[[np.ndarray], np.ndarray] | None = None
+        """Partitioned runs: maps this worker's per-source sums of positive coefficients
+        (float64 over nodes) to the sums over all partitions, for the conservation cap. Not
+        pickled; None = this learner holds every out-link of its sources."""
+
+    def __getstate__(self) -> dict:
+        state = dict(self.__dict__)
+        state["source_totals"] = None
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        state.setdefault("source_totals", None)
+        self.__dict__.update(state)
+
+    def _global_totals(self, totals: np.ndarray) -> np.ndarray:
+        return totals if self.source_totals is None else np.asarray(self.source_totals(totals), np.float64)
 
     # -- shape ---------------------------------------------------------------------------
     def _empty(self, n: int, src: np.ndarray, dst: np.ndarray) -> FlowState:
@@ -797,10 +814,10 @@ class FlowLearner:
     def _apply_cap(self, beta: np.ndarray) -> None:
         """Scale each source's positive coefficients so their sum is at most ``cap``."""
         s, st = self.settings, self.state
-        if s.cap is None or st.n_edges == 0:
+        if s.cap is None or (st.n_edges == 0 and self.source_totals is None):
             return
         pos = np.maximum(beta, 0.0)
-        total = sum_by(st.src, pos.sum(axis=0, dtype=float), st.n_nodes)
+        total = self._global_totals(sum_by(st.src, pos.sum(axis=0, dtype=float), st.n_nodes))
         over = total > s.cap
         if not over.any():
             return
@@ -922,6 +939,8 @@ class FlowLearner:
         pull = self._hour_table("pull") if s.prior_pull > 0 else np.zeros(1, self.dtype)
         _kernel_step(u, gain, ok, st.src, st.dst, st.beta[0], st.edge_hours, pull, s.prior,
                      s.beta_min, s.beta_max, totals)
+        if s.cap is not None:
+            totals = self._global_totals(totals)
         if s.cap is not None and (totals > s.cap).any():
             factor = np.ones(st.n_nodes, self.dtype)
             over = totals > s.cap

@@ -15,14 +15,17 @@ each change, so a chat sink can post one message per incident and edit it as it 
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import asdict, dataclass, field
 from enum import StrEnum
 from typing import Any
 
 from .records import Alert
 
-__all__ = ["IncidentState", "Incident", "IncidentUpdate", "IncidentTracker"]
+__all__ = ["Active", "IncidentState", "Incident", "IncidentUpdate", "IncidentTracker"]
+
+Active = set[tuple[str, str]] | Callable[[str, str], "int | None"]
+"""Who is beyond the band this hour: a set of (node, direction), or a last-tick lookup."""
 
 
 class IncidentState(StrEnum):
@@ -137,6 +140,7 @@ class IncidentTracker:
         self.quiet_hours = quiet_hours
         self.open: dict[str, Incident] = {}
         self.recent_active: dict[tuple[str, str], int] = {}
+        self._lookup: Callable[[str, str], int | None] | None = None
 
     def _owner(self, node: str, direction: str) -> Incident | None:
         for inc in self.open.values():
@@ -153,17 +157,26 @@ class IncidentTracker:
         for up in alert.upstream:
             if up.share < self.link_min_share:
                 continue
-            seen = self.recent_active.get((up.node, alert.kind))
+            seen = self._last_beyond(up.node, alert.kind)
             if seen is None or tick - seen > self.adjacent_hours:
                 continue
             up_owner = self._owner(up.node, alert.kind)
             groups.union(key, f"i:{up_owner.id}" if up_owner else f"n:{up.node}")
 
-    def step(self, tick: int, hour: str, alerts: list[Alert],
-             active: set[tuple[str, str]]) -> list[IncidentUpdate]:
-        """One closed hour: its alerts, and every (node, direction) beyond its band."""
-        for key in active:
-            self.recent_active[key] = tick
+    def step(self, tick: int, hour: str, alerts: list[Alert], active: Active) -> list[IncidentUpdate]:
+        """One closed hour: its alerts, and which (node, direction) pairs are beyond their band.
+
+        ``active`` is either the set of such pairs this hour, or a lookup
+        ``last_beyond(node, direction) -> tick or None`` (the last hour the node was beyond
+        its band that way; the engine keeps it as arrays, so no per-node set is built).
+        """
+        if callable(active):
+            lookup = active
+        else:
+            for key in active:
+                self.recent_active[key] = tick
+            lookup = None
+        self._lookup = lookup
         for a in alerts:
             self.recent_active[(a.node, a.kind)] = tick
         by_direction: dict[str, list[Alert]] = {}
@@ -172,10 +185,19 @@ class IncidentTracker:
         changed: dict[str, tuple[str, ...]] = {}
         for direction, group in sorted(by_direction.items()):
             changed.update(self._group(tick, hour, direction, group))
-        self._touch_members(tick, active)
+        self._touch_members(tick)
         updates = self._lifecycle(tick, hour, changed)
         self.recent_active = {k: v for k, v in self.recent_active.items() if tick - v <= self.adjacent_hours}
+        self._lookup = None
         return updates
+
+    def _last_beyond(self, node: str, direction: str) -> int | None:
+        """The last tick ``node`` was beyond its band in ``direction`` (alerts included)."""
+        seen = self.recent_active.get((node, direction))
+        other = self._lookup(node, direction) if self._lookup is not None else None
+        if seen is None or (other is not None and other > seen):
+            return other
+        return seen
 
     def _group(self, tick: int, hour: str, direction: str, alerts: list[Alert]) -> dict[str, tuple[str, ...]]:
         groups = _Groups()
@@ -226,10 +248,10 @@ class IncidentTracker:
                 mine.last_active = max(mine.last_active, member.last_active)
         del self.open[other.id]
 
-    def _touch_members(self, tick: int, active: set[tuple[str, str]]) -> None:
+    def _touch_members(self, tick: int) -> None:
         for inc in self.open.values():
             for node, member in inc.members.items():
-                if (node, inc.direction) in active:
+                if self._last_beyond(node, inc.direction) == tick:
                     member.last_active = tick
                     inc.last_active = tick
 

@@ -75,6 +75,8 @@ class RuleBook:
         self.rule_names = ["default"] + [o.name for o in settings.overrides]
         self.by_direction = {d: _Thresholds.empty() for d in DIRECTIONS}
         self.active: dict[str, np.ndarray] = {d: np.zeros(0, bool) for d in DIRECTIONS}
+        # nodes that met the rule (streak included) this hour but were held back by cooldown
+        self.suppressed: dict[str, np.ndarray] = {d: np.zeros(0, bool) for d in DIRECTIONS}
 
     @property
     def n(self) -> int:
@@ -128,6 +130,8 @@ class RuleBook:
         cond &= (ratio >= t.min_ratio) & (expected >= t.min_expected)
         self.active[direction] = cond
         t.streak = np.where(cond, t.streak + 1, 0).astype(np.int32)
-        fire = cond & (t.streak >= t.persistence) & (tick >= t.quiet_until)
+        due = cond & (t.streak >= t.persistence)
+        fire = due & (tick >= t.quiet_until)
+        self.suppressed[direction] = due & ~fire
         t.quiet_until = np.where(fire, tick + t.cooldown_hours, t.quiet_until)
         return fire

@@ -310,6 +310,10 @@ class Service:
         for update in result.incidents:
             self._appends.append((self.names.outbox, {"type": "incident", "key": incident_key(update),
                                                       "hour": hour, "incident": dumps(update)}))
+        if any(result.suppressed.values()):  # for the daily digest: what cooldown held back
+            self._appends.append((self.names.outbox, {"type": "suppressed", "key": f"suppressed|{hour}",
+                                                      "hour": hour, "reason": "cooldown",
+                                                      **{k: str(v) for k, v in result.suppressed.items()}}))
         if self.live.partitions > 1:
             self._barrier(closed.hour, result.observed - result.expected)
         self.state.count("hours")
