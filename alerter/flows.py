@@ -103,11 +103,12 @@ Public API
 
 from __future__ import annotations
 
-import os
 from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
+
+from . import flow_kernels
 
 __all__ = [
     "Attribution",
@@ -115,6 +116,7 @@ __all__ = [
     "FlowSettings",
     "FlowState",
     "FlowStep",
+    "LinkAges",
     "age_weight",
     "cap_contributions",
     "match_edges",
@@ -123,65 +125,8 @@ __all__ = [
 
 _TINY = 1e-30
 
-try:  # optional: fused passes for the default path's learning step; numpy passes otherwise
-    if os.environ.get("ALERTER_FLOW_KERNEL", "") == "numpy":  # force the fallback (benchmarks)
-        raise ImportError("numba disabled by ALERTER_FLOW_KERNEL=numpy")
-    import numba as _numba
-except ImportError:  # pragma: no cover - depends on the environment
-    _numba = None  # type: ignore[assignment]
-
-KERNEL = "numba" if _numba is not None else "numpy"
-"""Which implementation the default path's learning step uses."""
-
-
-def _jit(fn):  # noqa: ANN001, ANN202 - a decorator
-    return _numba.njit(cache=True, nogil=True)(fn) if _numba is not None else fn
-
-
-@_jit
-def _kernel_direction(u, ok, dst, cov, hours, rate_table, ridge, tiny, quad):  # noqa: ANN001, ANN201
-    """Per edge of an observed destination: update cov, overwrite ``u`` with ``v = z / cov'``,
-    add ``z v`` into ``quad[dst]``; other edges get ``v = 0`` and keep their cov."""
-    last = rate_table.shape[0] - 1
-    for e in range(u.shape[0]):
-        i = dst[e]
-        if not ok[i]:
-            u[e] = 0.0
-            continue
-        z = np.float64(u[e])
-        r = np.float64(rate_table[min(hours[e], last)])
-        c = np.float64(cov[e]) + r * (z * z - np.float64(cov[e]))
-        cov[e] = c
-        v = z / (np.float64(cov[e]) * (1.0 + ridge) + tiny)
-        u[e] = v
-        quad[i] += z * np.float64(u[e])
-
-
-@_jit
-def _kernel_step(v, gain, ok, src, dst, beta, hours, pull_table, prior, lo, hi, totals):  # noqa: ANN001, ANN201
-    """Per edge: ``beta += gain[dst] v``, the prior pull, the clip, ``hours += ok[dst]`` and the
-    positive coefficients summed into ``totals[src]`` for the cap."""
-    last = pull_table.shape[0] - 1
-    for e in range(v.shape[0]):
-        i = dst[e]
-        b = np.float64(beta[e]) + gain[i] * np.float64(v[e])
-        beta[e] = b
-        if ok[i]:
-            w = np.float64(pull_table[min(hours[e], last)])
-            beta[e] = np.float64(beta[e]) + w * (prior - np.float64(beta[e]))
-            hours[e] += 1
-        b = min(max(np.float64(beta[e]), lo), hi)
-        beta[e] = b
-        if beta[e] > 0:
-            totals[src[e]] += np.float64(beta[e])
-
-
-@_jit
-def _kernel_scale(beta, src, factor):  # noqa: ANN001, ANN201
-    """``beta *= factor[src]`` where beta > 0 (the conservation cap)."""
-    for e in range(beta.shape[0]):
-        if beta[e] > 0:
-            beta[e] = beta[e] * factor[src[e]]
+KERNEL = "numba" if flow_kernels.AVAILABLE else "numpy"
+"""Which implementation the default path's hour uses (see :mod:`alerter.flow_kernels`)."""
 
 
 def sum_by(index: np.ndarray, weights: np.ndarray, n: int) -> np.ndarray:
@@ -213,6 +158,7 @@ class Segments:
 
     def __init__(self, dst: np.ndarray, n: int) -> None:
         self.dst, self.n = dst, n
+        self._blocks: np.ndarray | None = None
         self.sorted = bool(dst.size == 0 or np.all(dst[1:] >= dst[:-1]))
         if self.sorted:
             indptr = np.searchsorted(dst, np.arange(n + 1))
@@ -220,6 +166,12 @@ class Segments:
             self.counts = np.diff(self.indptr)
             self.nonempty = self.counts > 0
             self.starts = self.indptr[:-1][self.nonempty]
+
+    def blocks(self) -> np.ndarray:
+        """Node boundaries of runs with about equal edge counts, for the parallel kernels."""
+        if self._blocks is None:
+            self._blocks = flow_kernels.balanced_blocks(self.indptr)
+        return self._blocks
 
     def sum(self, values: np.ndarray) -> np.ndarray:
         """Per node the sum of ``values`` over its in-edges, float64 (pairwise within a run)."""
@@ -375,14 +327,63 @@ class FlowState:
         return int(self.src.shape[0])
 
 
-@dataclass
 class Attribution:
-    """Per-edge explanation of a seen hour."""
+    """Per-edge explanation of a seen hour, made with the coefficients before learning it.
 
-    raw: np.ndarray  # (E,) signed c_e = sum_k beta[k, e] u_e(t-k)
-    capped: np.ndarray  # (E,) >= 0, contributions toward the node's excess, total <= |excess|
-    share: np.ndarray  # (E,) capped / |excess|; per destination sum <= 1
-    explained: np.ndarray  # (n,) per node sum of capped
+    Kept compact because it is made every hour over every edge: the signed per-edge
+    contributions ``raw`` (``c_e = sum_k beta[k, e] u_e(t-k)``) and, per node, the direction
+    looked at (``sign``: +1 surge, -1 drop, 0 none), the scale-down ``factor`` that keeps the
+    explained total within the node's excess, ``1 / |excess|`` and the totals. The capped
+    contributions (>= 0, per node total <= |excess|) and shares (per node sum <= 1) are
+    derived for the edges asked for; the full arrays on first access.
+    """
+
+    def __init__(self, raw: np.ndarray, dst: np.ndarray, sign: np.ndarray, factor: np.ndarray,
+                 inverse: np.ndarray, explained: np.ndarray, inflow: np.ndarray) -> None:
+        self.raw, self.dst = raw, dst
+        self.sign, self.factor, self.inverse = sign, factor, inverse
+        self.explained = explained  # (n,) per node sum of capped
+        self.inflow = inflow  # (n,) per node signed sum of raw
+        self._capped: np.ndarray | None = None
+
+    @classmethod
+    def from_parts(cls, raw: np.ndarray, dst: np.ndarray, excess: np.ndarray, sign: np.ndarray,
+                   part_sum: np.ndarray, inflow: np.ndarray) -> Attribution:
+        """From the per-node sums of the contributions pointing the way of ``sign``."""
+        n = excess.shape[0]
+        target = np.maximum(excess * sign, 0.0)
+        factor = np.divide(target, part_sum, out=np.ones(n), where=part_sum > target)
+        inverse = np.divide(1.0, target, out=np.zeros(n), where=target > 0)
+        return cls(raw, dst, sign, factor, inverse, part_sum * factor, inflow)
+
+    def capped_at(self, edges: slice | np.ndarray) -> np.ndarray:
+        """Capped contributions of the given edge positions (a slice or an index array)."""
+        d = self.dst[edges]
+        part = np.maximum(self.raw[edges] * self.sign[d].astype(self.raw.dtype), 0.0)
+        return part * self.factor[d].astype(self.raw.dtype)
+
+    @property
+    def capped(self) -> np.ndarray:
+        """(E,) >= 0: contributions toward each node's excess, per node total <= |excess|."""
+        if self._capped is None:
+            self._capped = self.capped_at(slice(None))
+        return self._capped
+
+    @property
+    def share(self) -> np.ndarray:
+        """(E,) capped / |excess of the destination|; per destination sum <= 1."""
+        return self.capped * self.inverse[self.dst].astype(self.raw.dtype)
+
+
+@dataclass(frozen=True)
+class LinkAges:
+    """Link ages as birth hours plus the current hour, so no per-edge age array is made."""
+
+    born: np.ndarray  # (E,) integer hour each link appeared
+    tick: int  # the current hour
+
+    def hours(self, dtype: np.dtype | type) -> np.ndarray:
+        return (self.tick - self.born).astype(dtype)
 
 
 @dataclass
@@ -448,15 +449,9 @@ def cap_contributions(raw: np.ndarray, dst: np.ndarray, excess: np.ndarray, n_no
         raise ValueError(f"direction must be 'auto', 'surge' or 'drop', got {direction!r}")
     ex = np.nan_to_num(np.asarray(excess, dtype=float), nan=0.0)
     sign = np.sign(ex) if direction == "auto" else np.full(n_nodes, 1.0 if direction == "surge" else -1.0)
-    target = np.maximum(ex * sign, 0.0)  # |excess| in the chosen direction, else 0
+    raw = np.array(raw, dtype=float)
     part = np.maximum(raw * sign[dst], 0.0)  # contributions pointing that way
-    total = sum_by(dst, part, n_nodes)
-    factor = np.divide(target, total, out=np.zeros(n_nodes), where=total > target)
-    factor[total <= target] = 1.0
-    capped = part * factor[dst]
-    explained = sum_by(dst, capped, n_nodes)
-    share = np.divide(capped, target[dst], out=np.zeros_like(capped), where=target[dst] > 0)
-    return Attribution(raw=np.array(raw, dtype=float), capped=capped, share=share, explained=explained)
+    return Attribution.from_parts(raw, dst, ex, sign, sum_by(dst, part, n_nodes), sum_by(dst, raw, n_nodes))
 
 
 # -- the learner -------------------------------------------------------------------------
@@ -494,7 +489,7 @@ class FlowLearner:
         beta = np.zeros((k, e), dt)
         beta[0] = s.prior
         return FlowState(
-            src=src, dst=dst, beta=beta, beta_avg=beta.copy(), cov=np.zeros((e, s.block_size, s.block_size), dt),
+            src=src, dst=dst, beta=beta, beta_avg=beta if s.forgetting else beta.copy(), cov=np.zeros((e, s.block_size, s.block_size), dt),
             edge_hours=np.zeros(e, np.int32), phi=np.zeros(n, dt), phi_avg=np.zeros(n, dt),
             phi_scale=np.zeros(n, dt), node_hours=np.zeros(n, np.int64), quad_mean=np.zeros(n, dt),
             hist_e=np.zeros((h, n), dt), hist_b=np.zeros((h, n), dt))
@@ -626,9 +621,11 @@ class FlowLearner:
         e = np.where(ok, x - b, 0.0).astype(self.dtype)
         return e, np.where(ok, b, 0.0).astype(self.dtype), ok
 
-    def _check_age(self, age_hours: np.ndarray | None) -> np.ndarray | None:
+    def _check_age(self, age_hours: np.ndarray | LinkAges | None) -> np.ndarray | None:
         if age_hours is None:
             return None
+        if isinstance(age_hours, LinkAges):
+            age_hours = age_hours.hours(self.dtype)
         age = np.asarray(age_hours, dtype=self.dtype)
         if age.shape != (self.state.n_edges,):
             raise ValueError(f"age_hours must have shape ({self.state.n_edges},), got {age.shape}")
@@ -643,7 +640,7 @@ class FlowLearner:
         pred += phi * own
         return c, pred
 
-    def contributions(self, x: np.ndarray, b: np.ndarray | None, age_hours: np.ndarray | None,
+    def contributions(self, x: np.ndarray, b: np.ndarray | None, age_hours: np.ndarray | LinkAges | None,
                       direction: str = "auto") -> Attribution:
         """Attribution of the hour ``x`` (not yet observed) with the public coefficients."""
         e, b0, ok = self._clean(x, b)
@@ -652,7 +649,7 @@ class FlowLearner:
         return cap_contributions(c, self.state.dst, np.where(ok, e, np.nan), self.state.n_nodes, direction)
 
     def forecast(self, ehat_next: np.ndarray, b_next: np.ndarray | None,
-                 age_hours: np.ndarray | None) -> np.ndarray:
+                 age_hours: np.ndarray | LinkAges | None) -> np.ndarray:
         """Neighbour part ``F_i - b_i`` of the next hour's forecast (plus phi_i * e_i(t) with own_lag).
 
         ``ehat_next`` is each source's own excess forecast (e.g. :func:`persistence_forecast`),
@@ -664,6 +661,11 @@ class FlowLearner:
         bn = np.zeros(n) if b_next is None else np.asarray(b_next, dtype=float)
         if eh.shape != (n,) or bn.shape != (n,):
             raise ValueError(f"ehat_next and b_next must have shape ({n},)")
+        if self._fused() and b_next is None:  # the joint model's forecast: excess through beta
+            seg, out = self._segments(), np.zeros(n)
+            flow_kernels.forecast_runs(seg.blocks(), seg.indptr, self.state.src, self.coefficients[0],
+                                       np.nan_to_num(eh, nan=0.0), out)
+            return out
         e0 = np.nan_to_num(eh, nan=0.0).astype(self.dtype)
         if self.settings.lags == 0 and not self.settings.own_lag:
             b0 = None if b_next is None else np.nan_to_num(bn, nan=0.0).astype(self.dtype)
@@ -676,11 +678,13 @@ class FlowLearner:
         return pred
 
     # -- learning ------------------------------------------------------------------------
-    def observe(self, x: np.ndarray, b: np.ndarray | None, age_hours: np.ndarray | None,
+    def observe(self, x: np.ndarray, b: np.ndarray | None, age_hours: np.ndarray | LinkAges | None,
                 direction: str = "auto") -> FlowStep:
         """Learn one closed hour; ``x`` raw counts (NaN = missing), ``b`` baseline (None = 0)."""
         st = self.state
         e, b0, ok = self._clean(x, b)
+        if self._default_path() and self._fused():
+            return self._observe_fused(e, b0, ok, age_hours, direction)
         if self._default_path():
             return self._observe_lag0(e, b0, ok, self._check_age(age_hours), direction)
         u = self._inputs(e, b0, self._check_age(age_hours))
@@ -902,27 +906,61 @@ class FlowLearner:
 
     def _attribute(self, raw: np.ndarray, e: np.ndarray, direction: str, seg: Segments) -> Attribution:
         """:func:`cap_contributions` over run sums, per-edge arrays in the learner's dtype."""
-        if direction not in ("auto", "surge", "drop"):
-            raise ValueError(f"direction must be 'auto', 'surge' or 'drop', got {direction!r}")
-        n, dt = self.state.n_nodes, self.dtype
-        ex = e.astype(np.float64)  # cleaned excess: 0 where the count is missing
-        sign = np.sign(ex) if direction == "auto" else np.full(n, 1.0 if direction == "surge" else -1.0)
-        target = np.maximum(ex * sign, 0.0)
-        part = seg.expand(sign, dt)
+        sign = self._sign(e, direction)
+        part = seg.expand(sign, self.dtype)
         part *= raw
         np.maximum(part, 0.0, out=part)
-        total = seg.sum(part)
-        factor = np.divide(target, total, out=np.ones(n), where=total > target)
-        capped = seg.expand(factor, dt)
-        capped *= part
-        inverse = np.divide(1.0, target, out=np.zeros(n), where=target > 0)
-        share = seg.expand(inverse, dt)
-        share *= capped
-        return Attribution(raw=raw, capped=capped, share=share, explained=seg.sum(capped))
+        return Attribution.from_parts(raw, self.state.dst, e.astype(np.float64), sign, seg.sum(part),
+                                      seg.sum(raw))
+
+    def _sign(self, e: np.ndarray, direction: str) -> np.ndarray:
+        """Per node the direction attribution looks at: the excess's sign, or a fixed one."""
+        if direction not in ("auto", "surge", "drop"):
+            raise ValueError(f"direction must be 'auto', 'surge' or 'drop', got {direction!r}")
+        if direction == "auto":
+            return np.sign(e.astype(np.float64))
+        return np.full(self.state.n_nodes, 1.0 if direction == "surge" else -1.0)
+
+    def _fused(self) -> bool:
+        """The fused per-destination kernels apply: numba there, edges sorted by destination."""
+        return (flow_kernels.AVAILABLE and self.settings.lags == 0 and not self.settings.own_lag
+                and self._segments().sorted and self._hour_table("pull") is not None)
+
+    def _observe_fused(self, e: np.ndarray, b0: np.ndarray, ok: np.ndarray,
+                       age_hours: np.ndarray | LinkAges | None, direction: str) -> FlowStep:
+        """``observe`` on the default path in one parallel kernel call (see flow_kernels)."""
+        st, s = self.state, self.settings
+        seg, n = self._segments(), st.n_nodes
+        sign = self._sign(e, direction)
+        if isinstance(age_hours, LinkAges):
+            ages, a0, a1 = age_hours.born, float(age_hours.tick), -1.0
+        else:
+            checked = self._check_age(age_hours)
+            ages, a0, a1 = (np.zeros(1, self.dtype) if checked is None else checked), 0.0, 1.0
+        weighted = s.age_weighting and age_hours is not None
+        raw = np.empty(st.n_edges, self.dtype)
+        inflow, part_sum = np.zeros(n), np.zeros(n)
+        totals = np.zeros((flow_kernels.threads(), n))
+        pull = self._hour_table("pull") if s.prior_pull > 0 else np.zeros(1, self.dtype)
+        flow_kernels.observe_runs(
+            seg.blocks(), seg.indptr, st.src, e, b0, ok, sign, st.beta[0], st.cov.reshape(-1), st.edge_hours,
+            ages, a0, a1, 1.0 / s.age_tau_hours if weighted else 0.0, self._hour_table("rate"), pull,
+            s.ridge, _TINY, s.prior, s.beta_min, s.beta_max, s.step, s.eps, s.scale_rate,
+            st.quad_mean, st.node_hours, raw, inflow, part_sum, totals)
+        if s.cap is not None:
+            total = self._global_totals(totals.sum(axis=0))
+            over = total > s.cap
+            if over.any():
+                factor = np.ones(n, self.dtype)
+                factor[over] = s.cap / total[over]
+                flow_kernels.scale(st.beta[0], st.src, factor)
+        st.hours += 1
+        attribution = Attribution.from_parts(raw, st.dst, e.astype(np.float64), sign, part_sum, inflow)
+        return FlowStep(predicted=inflow, attribution=attribution, updated=ok)
 
     def _learn_lag0(self, u: np.ndarray, err: np.ndarray, ok: np.ndarray, seg: Segments) -> None:
         """The generic ``_learn`` for d = 1: fused kernels if numba is there, else numpy passes."""
-        if _numba is not None and self._hour_table("pull") is not None:
+        if flow_kernels.AVAILABLE and self._hour_table("pull") is not None:
             self._learn_lag0_fused(u, err, ok)
         else:
             self._learn_lag0_numpy(u, err, ok, seg)
@@ -932,12 +970,12 @@ class FlowLearner:
         more only when some source exceeds the cap; float64 inside, stored in the dtype."""
         st, s = self.state, self.settings
         quad = np.zeros(st.n_nodes)
-        _kernel_direction(u, ok, st.dst, st.cov.reshape(-1), st.edge_hours, self._hour_table("rate"),
+        flow_kernels.direction(u, ok, st.dst, st.cov.reshape(-1), st.edge_hours, self._hour_table("rate"),
                           s.ridge, _TINY, quad)
         gain = self._gain_lag0(quad, err, ok) * s.step
         totals = np.zeros(st.n_nodes)
         pull = self._hour_table("pull") if s.prior_pull > 0 else np.zeros(1, self.dtype)
-        _kernel_step(u, gain, ok, st.src, st.dst, st.beta[0], st.edge_hours, pull, s.prior,
+        flow_kernels.step(u, gain, ok, st.src, st.dst, st.beta[0], st.edge_hours, pull, s.prior,
                      s.beta_min, s.beta_max, totals)
         if s.cap is not None:
             totals = self._global_totals(totals)
@@ -945,7 +983,7 @@ class FlowLearner:
             factor = np.ones(st.n_nodes, self.dtype)
             over = totals > s.cap
             factor[over] = s.cap / totals[over]
-            _kernel_scale(st.beta[0], st.src, factor)
+            flow_kernels.scale(st.beta[0], st.src, factor)
         st.node_hours += ok
         st.hours += 1
 

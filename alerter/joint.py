@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .config import AttributionSettings, FlowConfig
-from .flows import Attribution, FlowLearner, FlowSettings, persistence_forecast
+from .flows import Attribution, FlowLearner, FlowSettings, LinkAges, persistence_forecast
 from .graph import LinkGraph
 from .nodes import NodeIndex
 from .records import Upstream
@@ -64,7 +64,6 @@ class JointModel:
         self._synced = -1
         self.indptr = np.zeros(1, np.int64)
         self.born = np.zeros(0, np.int64)
-        self._age = np.zeros(0, np.float32)  # per-hour link ages, reused (one pass per hour)
 
     # -- structure ---------------------------------------------------------------------
     def add_edge(self, src: str, dst: str, tick: int) -> None:
@@ -109,16 +108,10 @@ class JointModel:
         born = self.graph.born[csr.order]
         small = born.size == 0 or (born.min() > -2**31 and born.max() < 2**31)
         self.born = born.astype(np.int32) if small else born  # hour ticks fit int32: half the bytes
-        self._age = np.zeros(self.born.shape, np.float32)
         self._synced = key  # type: ignore[assignment]
 
     def ages(self, tick: int) -> np.ndarray:
         return (tick - self.born).astype(np.float64)
-
-    def _ages32(self, tick: int) -> np.ndarray:
-        """``ages(tick)`` as float32 in a reused buffer (exact below 2**24 hours); what the learner
-        uses anyway, without the float64 temporaries."""
-        return np.subtract(tick, self.born, out=self._age, casting="unsafe")
 
     # -- per hour ----------------------------------------------------------------------
     def forecast(self, prev_excess: np.ndarray, tick: int) -> np.ndarray:
@@ -136,13 +129,13 @@ class JointModel:
     def observe(self, x: np.ndarray, b: np.ndarray, tick: int) -> Attribution:
         """Learn the seen hour; return the attribution made before learning from it."""
         self.sync()
-        step = self.learner.observe(x, b, self._ages32(tick))
+        step = self.learner.observe(x, b, LinkAges(self.born, tick))
         self.removed = [r for r in self.removed if tick - r.tick <= self.attr.removed_memory_hours]
         return step.attribution
 
     def inflow(self, attribution: Attribution) -> np.ndarray:
         """Per node, the signed sum of its neighbours' contributions (for imputation)."""
-        return self.learner.sum_into_dst(attribution.raw)
+        return attribution.inflow
 
     # -- explaining one node -----------------------------------------------------------
     def upstream(self, i: int, attribution: Attribution, b: np.ndarray, own_excess: float,
@@ -153,7 +146,7 @@ class JointModel:
         """
         lo, hi = (int(self.indptr[i]), int(self.indptr[i + 1])) if i + 1 < len(self.indptr) else (0, 0)
         src = self.learner.state.src[lo:hi]
-        visits = attribution.capped[lo:hi].astype(float)
+        visits = attribution.capped_at(slice(lo, hi)).astype(float)
         if own_excess < 0:
             src, visits = self._with_removed(i, src, visits, b)
         target = abs(own_excess)

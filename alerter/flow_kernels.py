@@ -1,0 +1,198 @@
+"""Fused numba kernels of the flow learner's default path (lag 0, no own lag, forgetting).
+
+The numpy path of :mod:`alerter.flows` makes a dozen passes over the per-edge arrays each
+hour; at 22 million links each pass costs tens of milliseconds of memory traffic. Over a
+destination-sorted edge list the whole hour can instead be done destination by
+destination, so the in-edges of one node are read once to predict, attribute and compute
+the step, and once more (still in cache for all but the hubs) to apply it. Destinations
+are split into blocks of about equal edge counts and the blocks run in parallel; nothing
+is shared between destinations except the per-source totals of the conservation cap,
+which each thread sums into its own row.
+
+Arithmetic is float64 inside; stored arrays keep their dtype. ``numba`` is a dependency,
+but these are optional: :data:`alerter.flows.KERNEL` says whether they are in use, and
+``ALERTER_FLOW_KERNEL=numpy`` forces the numpy path (CI runs both).
+"""
+
+from __future__ import annotations
+
+import os
+
+import numpy as np
+
+__all__ = ["AVAILABLE", "balanced_blocks", "direction", "forecast_runs", "observe_runs", "scale", "step",
+           "threads"]
+
+try:
+    if os.environ.get("ALERTER_FLOW_KERNEL", "") == "numpy":  # force the fallback (benchmarks, CI)
+        raise ImportError("numba disabled by ALERTER_FLOW_KERNEL=numpy")
+    import numba
+except ImportError:  # pragma: no cover - depends on the environment
+    numba = None  # type: ignore[assignment]
+
+AVAILABLE = numba is not None
+"""True when the kernels are compiled with numba (else the numpy path is used)."""
+
+
+def _jit(fn):  # noqa: ANN001, ANN202 - a decorator
+    return numba.njit(cache=True, nogil=True)(fn) if numba is not None else fn
+
+
+def _pjit(fn):  # noqa: ANN001, ANN202 - a decorator: parallel over the blocks
+    return numba.njit(cache=True, nogil=True, parallel=True)(fn) if numba is not None else fn
+
+
+_prange = numba.prange if numba is not None else range
+
+
+def _thread_id() -> int:  # replaced by numba's inside compiled code
+    return 0
+
+
+_tid = numba.get_thread_id if numba is not None else _thread_id
+
+
+def threads() -> int:
+    """Worker threads of the parallel kernels (numba's setting; 1 without numba)."""
+    return int(numba.get_num_threads()) if numba is not None else 1
+
+
+def balanced_blocks(indptr: np.ndarray, per_thread: int = 4) -> np.ndarray:
+    """Node boundaries ``[b0=0, b1, ..., n]`` of runs holding about equal numbers of edges.
+
+    >>> b = balanced_blocks(np.array([0, 5, 6, 7, 8, 10]))
+    >>> int(b[0]), int(b[-1]), bool(np.all(np.diff(b) > 0))
+    (0, 5, True)
+    """
+    n = indptr.shape[0] - 1
+    k = max(1, threads() * per_thread)
+    cuts = np.searchsorted(indptr, np.linspace(0, indptr[-1], k + 1)[1:-1], side="left")
+    return np.unique(np.concatenate([[0], np.clip(cuts, 0, n), [n]])).astype(np.int64)
+
+
+# -- the fused hour, per destination run ----------------------------------------------------
+@_pjit
+def forecast_runs(blocks, indptr, src, beta, ehat, out):  # noqa: ANN001, ANN201
+    """``out[i] = sum over i's in-edges of beta[e] * ehat[src[e]]``."""
+    for k in _prange(blocks.shape[0] - 1):
+        for i in range(blocks[k], blocks[k + 1]):
+            s = 0.0
+            for e in range(indptr[i], indptr[i + 1]):
+                s += np.float64(beta[e]) * np.float64(ehat[src[e]])
+            out[i] = s
+
+
+@_pjit
+def observe_runs(blocks, indptr, src, e, b, ok, sign, beta, cov, hours, ages, a0, a1, inv_tau,  # noqa: ANN001, ANN201, PLR0913
+                 rate_table, pull_table, ridge, tiny, prior, lo, hi, step, eps, scale_rate,
+                 quad_mean, node_hours, raw, inflow, part_sum, totals):
+    """One closed hour of the default path, destination by destination.
+
+    Per edge into node ``i``: input ``u = e[j] + exp(-age / tau) * b[j]`` (``age = a0 + a1 *
+    ages[e]``, so link birth hours and explicit ages both fit; ``inv_tau = 0``: no age
+    weight), contribution ``raw = beta u`` before learning, and its part pointing the way
+    of ``sign[i]`` summed into ``part_sum[i]`` for the attribution cap. Then, when ``ok[i]``,
+    the diagonal-RLS normalised step: running input variance ``cov``, direction ``v = u /
+    (cov (1 + ridge))``, gain ``step * err / max(mean quad, step * quad)``, the pull toward
+    the prior, the edge's observed hours; for every edge the clip to ``[lo, hi]`` and the
+    positive coefficients summed per source into ``totals[thread]`` for the conservation cap.
+    """
+    last_r = rate_table.shape[0] - 1
+    last_p = pull_table.shape[0] - 1
+    for k in _prange(blocks.shape[0] - 1):
+        t = _tid()
+        for i in range(blocks[k], blocks[k + 1]):
+            first, stop = indptr[i], indptr[i + 1]
+            sg = np.float64(sign[i])
+            good = ok[i]
+            pred = 0.0
+            part = 0.0
+            quad = 0.0
+            for ed in range(first, stop):
+                j = src[ed]
+                w = 0.0
+                if inv_tau > 0.0:
+                    age = max(a0 + a1 * np.float64(ages[ed]), 0.0)
+                    w = np.exp(-age * inv_tau)
+                z = np.float64(e[j]) + w * np.float64(b[j])
+                raw[ed] = np.float64(beta[ed]) * z
+                r = np.float64(raw[ed])
+                pred += r
+                if r * sg > 0.0:
+                    part += r * sg
+                if good:
+                    c = np.float64(cov[ed])
+                    cov[ed] = c + np.float64(rate_table[min(hours[ed], last_r)]) * (z * z - c)
+                    quad += z * z / (np.float64(cov[ed]) * (1.0 + ridge) + tiny)
+            inflow[i] = pred
+            part_sum[i] = part
+            gain = 0.0
+            if good:
+                rate_n = max(1.0 / (np.float64(node_hours[i]) + 1.0), scale_rate)
+                qm = np.float64(quad_mean[i])
+                quad_mean[i] = qm + rate_n * (quad - qm)
+                norm = max(np.float64(quad_mean[i]), step * quad) + eps
+                gain = step * (np.float64(e[i]) - pred) / norm
+                node_hours[i] += 1
+            for ed in range(first, stop):
+                bb = np.float64(beta[ed])
+                if good:
+                    j = src[ed]
+                    w = 0.0
+                    if inv_tau > 0.0:
+                        age = max(a0 + a1 * np.float64(ages[ed]), 0.0)
+                        w = np.exp(-age * inv_tau)
+                    z = np.float64(e[j]) + w * np.float64(b[j])
+                    bb += gain * z / (np.float64(cov[ed]) * (1.0 + ridge) + tiny)
+                    bb += np.float64(pull_table[min(hours[ed], last_p)]) * (prior - bb)
+                    hours[ed] += 1
+                beta[ed] = min(max(bb, lo), hi)
+                if beta[ed] > 0:
+                    totals[t, src[ed]] += np.float64(beta[ed])
+
+
+@_pjit
+def scale(beta, src, factor):  # noqa: ANN001, ANN201
+    """``beta *= factor[src]`` where beta > 0 (the conservation cap)."""
+    for e in _prange(beta.shape[0]):
+        if beta[e] > 0:
+            beta[e] = beta[e] * factor[src[e]]
+
+
+# -- the two-pass learning step for an unsorted edge list -----------------------------------
+@_jit
+def direction(u, ok, dst, cov, hours, rate_table, ridge, tiny, quad):  # noqa: ANN001, ANN201
+    """Per edge of an observed destination: update cov, overwrite ``u`` with ``v = z / cov'``,
+    add ``z v`` into ``quad[dst]``; other edges get ``v = 0`` and keep their cov."""
+    last = rate_table.shape[0] - 1
+    for e in range(u.shape[0]):
+        i = dst[e]
+        if not ok[i]:
+            u[e] = 0.0
+            continue
+        z = np.float64(u[e])
+        r = np.float64(rate_table[min(hours[e], last)])
+        c = np.float64(cov[e]) + r * (z * z - np.float64(cov[e]))
+        cov[e] = c
+        v = z / (np.float64(cov[e]) * (1.0 + ridge) + tiny)
+        u[e] = v
+        quad[i] += z * np.float64(u[e])
+
+
+@_jit
+def step(v, gain, ok, src, dst, beta, hours, pull_table, prior, lo, hi, totals):  # noqa: ANN001, ANN201
+    """Per edge: ``beta += gain[dst] v``, the prior pull, the clip, ``hours += ok[dst]`` and the
+    positive coefficients summed into ``totals[src]`` for the cap."""
+    last = pull_table.shape[0] - 1
+    for e in range(v.shape[0]):
+        i = dst[e]
+        b = np.float64(beta[e]) + gain[i] * np.float64(v[e])
+        beta[e] = b
+        if ok[i]:
+            w = np.float64(pull_table[min(hours[e], last)])
+            beta[e] = np.float64(beta[e]) + w * (prior - np.float64(beta[e]))
+            hours[e] += 1
+        b = min(max(np.float64(beta[e]), lo), hi)
+        beta[e] = b
+        if beta[e] > 0:
+            totals[src[e]] += np.float64(beta[e])

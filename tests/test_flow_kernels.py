@@ -1,0 +1,142 @@
+"""The fused per-destination kernels of the flow learner against its numpy path and a plain loop.
+
+The default path (lag 0, no own lag, forgetting) over a destination-sorted edge list runs
+one parallel numba kernel per hour (``alerter.flow_kernels``); these checks hold it to the
+numpy passes of the same step and to the deliberately plain loop of
+``tests/test_flows_generic.py`` (the reference written from the module's formulas), and
+check the cross-partition totals hook of the conservation cap.
+"""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+import pytest
+
+from alerter import flow_kernels
+from alerter.flows import FlowLearner, FlowSettings, LinkAges
+
+from .test_flows_generic import LoopFlows
+
+pytestmark = pytest.mark.skipif(not flow_kernels.AVAILABLE, reason="numba kernels disabled by ALERTER_FLOW_KERNEL")
+
+N = 40
+
+
+def _graph(seed: int = 1) -> tuple[np.ndarray, np.ndarray]:
+    """Destination-sorted distinct edges, a hub with many in-links, some nodes without any."""
+    rng = np.random.default_rng(seed)
+    pairs = {(int(s), int(d)) for s, d in zip(rng.integers(0, N, 300), rng.integers(0, N - 5, 300), strict=True)
+             if s != d}
+    pairs |= {(s, 0) for s in range(1, N)}  # node 0 is a hub
+    keys = sorted(pairs, key=lambda p: (p[1], p[0]))
+    return np.array([p[0] for p in keys]), np.array([p[1] for p in keys])
+
+
+SRC, DST = _graph()
+
+
+def _hours(hours: int, seed: int = 4, missing: float = 0.1):
+    rng = np.random.default_rng(seed)
+    level = rng.uniform(5.0, 300.0, N)
+    for t in range(hours):
+        b = level * (1.0 + 0.2 * np.sin(t / 4.0))
+        x = rng.poisson(b * rng.uniform(0.5, 1.8, N)).astype(float)
+        x[rng.random(N) < missing] = np.nan
+        yield t, x, b
+
+
+def _pair(**kw) -> tuple[FlowLearner, FlowLearner]:
+    a, b = FlowLearner(FlowSettings(**kw)), FlowLearner(FlowSettings(**kw))
+    a.resize(N, SRC, DST)
+    b.resize(N, SRC, DST)
+    return a, b
+
+
+def _numpy_observe(fl: FlowLearner, *args, monkeypatch: pytest.MonkeyPatch, **kw):
+    with monkeypatch.context() as m:
+        m.setattr(flow_kernels, "AVAILABLE", False)
+        return fl.observe(*args, **kw)
+
+
+@pytest.mark.parametrize("kw", [dict(), dict(dtype="float64", cap=0.05, prior_pull=0.5),
+                                dict(dtype="float64", age_weighting=False)])
+def test_fused_hour_equals_numpy_passes(kw: dict, monkeypatch: pytest.MonkeyPatch) -> None:
+    fused, plain = _pair(**kw)
+    born = np.linspace(-400, 0, SRC.size).astype(np.int64)
+    tol = 2e-4 if fused.dtype == np.float32 else 1e-9
+    assert fused._fused()
+    for t, x, b in _hours(120):
+        got = fused.observe(x, b, LinkAges(born, t))
+        want = _numpy_observe(plain, x, b, LinkAges(born, t), monkeypatch=monkeypatch)
+        scale = 1.0 + np.abs(want.predicted).max()
+        np.testing.assert_allclose(got.predicted, want.predicted, rtol=0, atol=tol * scale)
+        np.testing.assert_allclose(got.attribution.capped, want.attribution.capped, rtol=0, atol=tol * scale)
+        np.testing.assert_allclose(got.attribution.share, want.attribution.share, rtol=0, atol=tol)
+        np.testing.assert_allclose(got.attribution.explained, want.attribution.explained, rtol=0, atol=tol * scale)
+        np.testing.assert_allclose(fused.coefficients, plain.coefficients, rtol=0, atol=tol)
+    np.testing.assert_array_equal(fused.state.edge_hours, plain.state.edge_hours)
+    assert np.abs(fused.coefficients - fused.settings.prior).max() > 1e-3  # it learned something
+    ehat = np.linspace(-50.0, 50.0, N)
+    np.testing.assert_allclose(fused.forecast(ehat, None, None), plain.forecast(ehat, None, None),
+                               rtol=0, atol=tol * 100)
+
+
+def test_fused_hour_equals_plain_loop() -> None:
+    """Against the plain loop reference (float64; explicit ages, as the loop takes them)."""
+    s = FlowSettings(dtype="float64", age_tau_hours=20.0, cap=0.05, prior_pull=0.5)
+    fl = FlowLearner(s)
+    fl.resize(N, SRC, DST)
+    ref = LoopFlows(s, N, SRC, DST)
+    ages = np.linspace(0.0, 60.0, SRC.size)
+    for t, x, b in _hours(40, missing=0.15):
+        got = fl.observe(x, b, ages + t).predicted
+        want = ref.observe(x, b, ages + t)
+        np.testing.assert_allclose(got, want, rtol=0, atol=1e-10 * (1 + np.abs(want).max()))
+        np.testing.assert_allclose(fl.coefficients, ref.coefficients, rtol=0, atol=1e-10)
+
+
+def test_cap_totals_hook_makes_two_halves_learn_like_the_whole() -> None:
+    """Edges split by destination over two learners (two partitions, run in two threads); the
+    totals hook sums the halves' per-source totals, so the cap binds as over the whole graph."""
+    kw = dict(dtype="float64", cap=0.3, step=0.2)
+    whole = FlowLearner(FlowSettings(**kw))
+    whole.resize(N, SRC, DST)
+    halves = []
+    for part in (DST % 2 == 0, DST % 2 == 1):
+        fl = FlowLearner(FlowSettings(**kw))
+        fl.resize(N, SRC[part], DST[part])
+        halves.append((fl, part))
+    sync = threading.Barrier(2)
+    partial: dict[int, np.ndarray] = {}
+
+    def hook(k: int):
+        def exchange(totals: np.ndarray) -> np.ndarray:
+            partial[k] = totals.copy()
+            sync.wait()
+            out = partial[0] + partial[1]
+            sync.wait()
+            return out
+        return exchange
+
+    for k, (fl, _) in enumerate(halves):
+        fl.source_totals = hook(k)
+    bound = 0
+    for _, x, b in _hours(150, missing=0.05):
+        whole.observe(x, b, None)
+        threads = [threading.Thread(target=fl.observe, args=(x, b, None)) for fl, _ in halves]
+        for th in threads:
+            th.start()
+        for th in threads:
+            th.join()
+        merged = np.zeros(SRC.size)
+        for fl, part in halves:
+            merged[part] = fl.coefficients[0]
+        np.testing.assert_allclose(merged, whole.coefficients[0], rtol=0, atol=1e-12)
+        per_source = np.bincount(SRC, weights=whole.coefficients[0], minlength=N)
+        bound += int((per_source > 0.3 - 1e-9).any())
+    assert bound > 0  # the cap did bind, across the halves
+    each = np.bincount(SRC[halves[0][1]], weights=halves[0][0].coefficients[0], minlength=N)
+    assert (np.bincount(SRC, weights=whole.coefficients[0], minlength=N) <= 0.3 + 1e-9).all()
+    assert each.max() < 0.3 + 1e-9
