@@ -82,20 +82,35 @@ def forecast_runs(blocks, indptr, src, beta, ehat, out):  # noqa: ANN001, ANN201
             out[i] = s
 
 
+@_jit
+def _novelty(ages, ed, a0, a1, inv_tau, table):  # noqa: ANN001, ANN202
+    """``exp(-max(age, 0) / tau)`` of edge ``ed``: from ``table`` for whole-hour ages (0 past
+    its end), else computed; 0 when ``inv_tau`` is 0 (no age weighting)."""
+    if inv_tau == 0.0:
+        return 0.0
+    age = max(a0 + a1 * np.float64(ages[ed]), 0.0)
+    if table.shape[0] > 0:
+        k = np.int64(age)
+        return table[k] if k < table.shape[0] else 0.0
+    return np.exp(-age * inv_tau)
+
+
 @_pjit
-def observe_runs(blocks, indptr, src, e, b, ok, sign, beta, cov, hours, ages, a0, a1, inv_tau,  # noqa: ANN001, ANN201, PLR0913
+def observe_runs(blocks, indptr, src, e, b, ok, sign, beta, cov, hours, ages, a0, a1, inv_tau, age_table,  # noqa: ANN001, ANN201, PLR0913
                  rate_table, pull_table, ridge, tiny, prior, lo, hi, step, eps, scale_rate,
                  quad_mean, node_hours, raw, inflow, part_sum, totals):
     """One closed hour of the default path, destination by destination.
 
     Per edge into node ``i``: input ``u = e[j] + exp(-age / tau) * b[j]`` (``age = a0 + a1 *
     ages[e]``, so link birth hours and explicit ages both fit; ``inv_tau = 0``: no age
-    weight), contribution ``raw = beta u`` before learning, and its part pointing the way
-    of ``sign[i]`` summed into ``part_sum[i]`` for the attribution cap. Then, when ``ok[i]``,
-    the diagonal-RLS normalised step: running input variance ``cov``, direction ``v = u /
-    (cov (1 + ridge))``, gain ``step * err / max(mean quad, step * quad)``, the pull toward
-    the prior, the edge's observed hours; for every edge the clip to ``[lo, hi]`` and the
-    positive coefficients summed per source into ``totals[thread]`` for the conservation cap.
+    weight; a non-empty ``age_table`` holds the weight per whole hour of age), contribution
+    ``raw = beta u`` before learning, and its part pointing the way of ``sign[i]`` summed
+    into ``part_sum[i]`` for the attribution cap. Then, when ``ok[i]``, the diagonal-RLS
+    normalised step: running input variance ``cov``, direction ``v = u / (cov (1 + ridge))``,
+    gain ``step * err / max(mean quad, step * quad)``, the pull toward the prior, the edge's
+    observed hours; for every edge the clip to ``[lo, hi]`` and the positive coefficients
+    summed per source into ``totals[thread]`` for the conservation cap. The second pass
+    recomputes each input rather than storing it: cheaper than a round trip to memory.
     """
     last_r = rate_table.shape[0] - 1
     last_p = pull_table.shape[0] - 1
@@ -110,11 +125,7 @@ def observe_runs(blocks, indptr, src, e, b, ok, sign, beta, cov, hours, ages, a0
             quad = 0.0
             for ed in range(first, stop):
                 j = src[ed]
-                w = 0.0
-                if inv_tau > 0.0:
-                    age = max(a0 + a1 * np.float64(ages[ed]), 0.0)
-                    w = np.exp(-age * inv_tau)
-                z = np.float64(e[j]) + w * np.float64(b[j])
+                z = np.float64(e[j]) + _novelty(ages, ed, a0, a1, inv_tau, age_table) * np.float64(b[j])
                 raw[ed] = np.float64(beta[ed]) * z
                 r = np.float64(raw[ed])
                 pred += r
@@ -138,11 +149,7 @@ def observe_runs(blocks, indptr, src, e, b, ok, sign, beta, cov, hours, ages, a0
                 bb = np.float64(beta[ed])
                 if good:
                     j = src[ed]
-                    w = 0.0
-                    if inv_tau > 0.0:
-                        age = max(a0 + a1 * np.float64(ages[ed]), 0.0)
-                        w = np.exp(-age * inv_tau)
-                    z = np.float64(e[j]) + w * np.float64(b[j])
+                    z = np.float64(e[j]) + _novelty(ages, ed, a0, a1, inv_tau, age_table) * np.float64(b[j])
                     bb += gain * z / (np.float64(cov[ed]) * (1.0 + ridge) + tiny)
                     bb += np.float64(pull_table[min(hours[ed], last_p)]) * (prior - bb)
                     hours[ed] += 1

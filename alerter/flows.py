@@ -921,6 +921,16 @@ class FlowLearner:
             return np.sign(e.astype(np.float64))
         return np.full(self.state.n_nodes, 1.0 if direction == "surge" else -1.0)
 
+    def _novelty_table(self) -> np.ndarray:
+        """``exp(-h / tau)`` per whole hour of link age ``h``, up to where it underflows in the
+        learner's dtype (float32 near 104 tau, float64 near 745 tau; 0 beyond)."""
+        table = self._tables.get("novelty")
+        if table is None:
+            reach = 104.0 if self.dtype == np.float32 else 746.0
+            h = np.arange(int(reach * self.settings.age_tau_hours) + 1, dtype=np.float64)
+            table = self._tables["novelty"] = np.exp(-h / self.settings.age_tau_hours)
+        return table
+
     def _fused(self) -> bool:
         """The fused per-destination kernels apply: numba there, edges sorted by destination."""
         return (flow_kernels.AVAILABLE and self.settings.lags == 0 and not self.settings.own_lag
@@ -932,19 +942,20 @@ class FlowLearner:
         st, s = self.state, self.settings
         seg, n = self._segments(), st.n_nodes
         sign = self._sign(e, direction)
-        if isinstance(age_hours, LinkAges):
-            ages, a0, a1 = age_hours.born, float(age_hours.tick), -1.0
+        weighted = s.age_weighting and age_hours is not None
+        if isinstance(age_hours, LinkAges):  # whole hours: the weight comes from a table
+            ages, a0, a1, table = age_hours.born, float(age_hours.tick), -1.0, self._novelty_table()
         else:
             checked = self._check_age(age_hours)
             ages, a0, a1 = (np.zeros(1, self.dtype) if checked is None else checked), 0.0, 1.0
-        weighted = s.age_weighting and age_hours is not None
+            table = np.zeros(0)
         raw = np.empty(st.n_edges, self.dtype)
         inflow, part_sum = np.zeros(n), np.zeros(n)
         totals = np.zeros((flow_kernels.threads(), n))
         pull = self._hour_table("pull") if s.prior_pull > 0 else np.zeros(1, self.dtype)
         flow_kernels.observe_runs(
             seg.blocks(), seg.indptr, st.src, e, b0, ok, sign, st.beta[0], st.cov.reshape(-1), st.edge_hours,
-            ages, a0, a1, 1.0 / s.age_tau_hours if weighted else 0.0, self._hour_table("rate"), pull,
+            ages, a0, a1, 1.0 / s.age_tau_hours if weighted else 0.0, table, self._hour_table("rate"), pull,
             s.ridge, _TINY, s.prior, s.beta_min, s.beta_max, s.step, s.eps, s.scale_rate,
             st.quad_mean, st.node_hours, raw, inflow, part_sum, totals)
         if s.cap is not None:

@@ -141,12 +141,13 @@ class IncidentTracker:
         self.open: dict[str, Incident] = {}
         self.recent_active: dict[tuple[str, str], int] = {}
         self._lookup: Callable[[str, str], int | None] | None = None
+        self._members: dict[tuple[str, str], Incident] | None = None  # (node, direction) -> open incident
 
     def _owner(self, node: str, direction: str) -> Incident | None:
-        for inc in self.open.values():
-            if inc.direction == direction and node in inc.members:
-                return inc
-        return None
+        """The open incident holding ``node`` in ``direction`` (index built once per hour)."""
+        if self._members is None:
+            self._members = {(m, inc.direction): inc for inc in self.open.values() for m in inc.members}
+        return self._members.get((node, direction))
 
     def _link(self, groups: _Groups, alert: Alert, tick: int) -> None:
         key = f"n:{alert.node}"
@@ -176,7 +177,7 @@ class IncidentTracker:
             for key in active:
                 self.recent_active[key] = tick
             lookup = None
-        self._lookup = lookup
+        self._lookup, self._members = lookup, None
         for a in alerts:
             self.recent_active[(a.node, a.kind)] = tick
         by_direction: dict[str, list[Alert]] = {}
@@ -188,7 +189,7 @@ class IncidentTracker:
         self._touch_members(tick)
         updates = self._lifecycle(tick, hour, changed)
         self.recent_active = {k: v for k, v in self.recent_active.items() if tick - v <= self.adjacent_hours}
-        self._lookup = None
+        self._lookup, self._members = None, None
         return updates
 
     def _last_beyond(self, node: str, direction: str) -> int | None:
@@ -230,6 +231,8 @@ class IncidentTracker:
             if member is None:
                 member = inc.members[node] = Member(first_hour=hour, last_active=tick)
                 new.append(node)
+                if self._members is not None:
+                    self._members[(node, inc.direction)] = inc
             if a is not None:
                 member.excess += a.excess
                 member.unexplained += a.excess if a.unexplained is None else a.unexplained
@@ -246,6 +249,8 @@ class IncidentTracker:
                 mine.unexplained += member.unexplained
                 mine.alerts += member.alerts
                 mine.last_active = max(mine.last_active, member.last_active)
+            if self._members is not None:
+                self._members[(node, target.direction)] = target
         del self.open[other.id]
 
     def _touch_members(self, tick: int) -> None:
