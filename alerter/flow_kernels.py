@@ -96,26 +96,29 @@ def _novelty(ages, ed, a0, a1, inv_tau, table):  # noqa: ANN001, ANN202
 
 
 @_pjit
-def observe_runs(blocks, indptr, src, e, b, ok, sign, beta, cov, hours, ages, a0, a1, inv_tau, age_table,  # noqa: ANN001, ANN201, PLR0913
+def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, a1, inv_tau, age_table,  # noqa: ANN001, ANN201, PLR0913
                  rate_table, pull_table, ridge, tiny, prior, lo, hi, step, eps, scale_rate,
-                 quad_mean, node_hours, raw, inflow, part_sum, totals):
+                 quad_mean, node_hours, raw, inflow, part_sum, totals, scratch):
     """One closed hour of the default path, destination by destination.
 
-    Per edge into node ``i``: input ``u = e[j] + exp(-age / tau) * b[j]`` (``age = a0 + a1 *
-    ages[e]``, so link birth hours and explicit ages both fit; ``inv_tau = 0``: no age
-    weight; a non-empty ``age_table`` holds the weight per whole hour of age), contribution
-    ``raw = beta u`` before learning, and its part pointing the way of ``sign[i]`` summed
-    into ``part_sum[i]`` for the attribution cap. Then, when ``ok[i]``, the diagonal-RLS
-    normalised step: running input variance ``cov``, direction ``v = u / (cov (1 + ridge))``,
-    gain ``step * err / max(mean quad, step * quad)``, the pull toward the prior, the edge's
-    observed hours; for every edge the clip to ``[lo, hi]`` and the positive coefficients
-    summed per source into ``totals[thread]`` for the conservation cap. The second pass
-    recomputes each input rather than storing it: cheaper than a round trip to memory.
+    ``eb[j] = (excess, baseline)`` of node ``j`` side by side, so one cache line serves both
+    when gathered through ``src``. Per edge into node ``i``: input ``u = e[j] + exp(-age /
+    tau) * b[j]`` (``age = a0 + a1 * ages[e]``, so link birth hours and explicit ages both
+    fit; ``inv_tau = 0``: no age weight; a non-empty ``age_table`` holds the weight per whole
+    hour of age), contribution ``raw = beta u`` before learning, and its part pointing the
+    way of ``sign[i]`` summed into ``part_sum[i]`` for the attribution cap. Then, when
+    ``ok[i]``, the diagonal-RLS normalised step: running input variance ``cov``, direction
+    ``v = u / (cov (1 + ridge))``, gain ``step * err / max(mean quad, step * quad)``, the
+    pull toward the prior, the edge's observed hours; for every edge the clip to ``[lo,
+    hi]`` and the positive coefficients summed per source into ``totals[thread]`` for the
+    conservation cap. ``scratch[thread]`` (as long as the largest in-degree) keeps the run's
+    directions between the two passes, so the second pass gathers nothing.
     """
     last_r = rate_table.shape[0] - 1
     last_p = pull_table.shape[0] - 1
     for k in _prange(blocks.shape[0] - 1):
         t = _tid()
+        v_run = scratch[t]
         for i in range(blocks[k], blocks[k + 1]):
             first, stop = indptr[i], indptr[i + 1]
             sg = np.float64(sign[i])
@@ -125,7 +128,7 @@ def observe_runs(blocks, indptr, src, e, b, ok, sign, beta, cov, hours, ages, a0
             quad = 0.0
             for ed in range(first, stop):
                 j = src[ed]
-                z = np.float64(e[j]) + _novelty(ages, ed, a0, a1, inv_tau, age_table) * np.float64(b[j])
+                z = np.float64(eb[j, 0]) + _novelty(ages, ed, a0, a1, inv_tau, age_table) * np.float64(eb[j, 1])
                 raw[ed] = np.float64(beta[ed]) * z
                 r = np.float64(raw[ed])
                 pred += r
@@ -134,28 +137,30 @@ def observe_runs(blocks, indptr, src, e, b, ok, sign, beta, cov, hours, ages, a0
                 if good:
                     c = np.float64(cov[ed])
                     cov[ed] = c + np.float64(rate_table[min(hours[ed], last_r)]) * (z * z - c)
-                    quad += z * z / (np.float64(cov[ed]) * (1.0 + ridge) + tiny)
+                    v = z / (np.float64(cov[ed]) * (1.0 + ridge) + tiny)
+                    v_run[ed - first] = v
+                    quad += z * v
             inflow[i] = pred
             part_sum[i] = part
-            gain = 0.0
             if good:
                 rate_n = max(1.0 / (np.float64(node_hours[i]) + 1.0), scale_rate)
                 qm = np.float64(quad_mean[i])
                 quad_mean[i] = qm + rate_n * (quad - qm)
                 norm = max(np.float64(quad_mean[i]), step * quad) + eps
-                gain = step * (np.float64(e[i]) - pred) / norm
+                gain = step * (np.float64(eb[i, 0]) - pred) / norm
                 node_hours[i] += 1
-            for ed in range(first, stop):
-                bb = np.float64(beta[ed])
-                if good:
-                    j = src[ed]
-                    z = np.float64(e[j]) + _novelty(ages, ed, a0, a1, inv_tau, age_table) * np.float64(b[j])
-                    bb += gain * z / (np.float64(cov[ed]) * (1.0 + ridge) + tiny)
+                for ed in range(first, stop):
+                    bb = np.float64(beta[ed]) + gain * v_run[ed - first]
                     bb += np.float64(pull_table[min(hours[ed], last_p)]) * (prior - bb)
                     hours[ed] += 1
-                beta[ed] = min(max(bb, lo), hi)
-                if beta[ed] > 0:
-                    totals[t, src[ed]] += np.float64(beta[ed])
+                    beta[ed] = min(max(bb, lo), hi)
+                    if beta[ed] > 0:
+                        totals[t, src[ed]] += np.float64(beta[ed])
+            else:
+                for ed in range(first, stop):
+                    beta[ed] = min(max(np.float64(beta[ed]), lo), hi)
+                    if beta[ed] > 0:
+                        totals[t, src[ed]] += np.float64(beta[ed])
 
 
 @_pjit

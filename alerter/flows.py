@@ -952,12 +952,13 @@ class FlowLearner:
         raw = np.empty(st.n_edges, self.dtype)
         inflow, part_sum = np.zeros(n), np.zeros(n)
         totals = np.zeros((flow_kernels.threads(), n))
+        scratch = self._get("scratch", (flow_kernels.threads(), max(int(seg.counts.max(initial=0)), 1)))
         pull = self._hour_table("pull") if s.prior_pull > 0 else np.zeros(1, self.dtype)
         flow_kernels.observe_runs(
-            seg.blocks(), seg.indptr, st.src, e, b0, ok, sign, st.beta[0], st.cov.reshape(-1), st.edge_hours,
+            seg.blocks(), seg.indptr, st.src, np.stack([e, b0], axis=1), ok, sign, st.beta[0], st.cov.reshape(-1), st.edge_hours,
             ages, a0, a1, 1.0 / s.age_tau_hours if weighted else 0.0, table, self._hour_table("rate"), pull,
             s.ridge, _TINY, s.prior, s.beta_min, s.beta_max, s.step, s.eps, s.scale_rate,
-            st.quad_mean, st.node_hours, raw, inflow, part_sum, totals)
+            st.quad_mean, st.node_hours, raw, inflow, part_sum, totals, scratch)
         if s.cap is not None:
             total = self._global_totals(totals.sum(axis=0))
             over = total > s.cap

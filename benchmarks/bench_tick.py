@@ -207,14 +207,24 @@ def bandwidth_gbs(repeat: int = 5) -> float:
 def edge_passes(eng: Engine) -> list[tuple[str, int]]:
     """Bytes per edge of each pass over per-edge arrays in the default flow path, as implemented.
 
-    Read from the learner's actual array dtypes; mirrors ``FlowLearner._forecast_lag0`` and
-    ``_observe_lag0`` (lag 0, no own lag, forgetting, preconditioning, age weighting, dst
-    sorted). Gathers of node arrays count the index read and the output write (the node
-    array stays in cache); reductions count their input read.
+    Read from the learner's actual array dtypes. With numba: the fused kernels of
+    ``alerter.flow_kernels`` (``forecast_runs``, the two passes of ``observe_runs`` over
+    each destination's in-edges, ``scale`` when the cap binds); without: the numpy passes
+    of ``FlowLearner._observe_lag0``. Gathers of node arrays count the index read only (the
+    node arrays stay in cache); a second pass over a run counts its reads again, although
+    for all but the hubs they come from cache, so the bound is a generous one.
     """
     st, joint = eng.joint.learner.state, eng.joint
     f = st.beta.dtype.itemsize
     i_src, h_e, born = st.src.dtype.itemsize, st.edge_hours.dtype.itemsize, joint.born.dtype.itemsize
+    if flows.KERNEL == "numba":
+        return [
+            ("forecast_runs: read src, beta", i_src + f),
+            ("observe_runs pass 1: read src, born, beta, hours; cov read+write; write raw",
+             i_src + born + f + h_e + 2 * f + f),
+            ("observe_runs pass 2: read src, born, cov; beta and hours read+write", i_src + born + f + 2 * f + 2 * h_e),
+            ("scale (cap binds): read src; beta read+write", i_src + 2 * f),
+        ]
     return [
         ("forecast: u = take(ehat, src)", i_src + f),
         ("forecast: c = beta * u", 3 * f),
@@ -223,9 +233,8 @@ def edge_passes(eng: Engine) -> list[tuple[str, int]]:
         ("observe: take(e, src), take(b, src)", 2 * (i_src + f)),
         ("observe: u = e_src + w * b_src (2 ops)", 2 * 3 * f),
         ("observe: c = beta * u, reduceat(c)", 3 * f + f),
-        ("attribution: part = max(c * sign_dst, 0) (repeat sign, mul, max)", f + 3 * f + 2 * f),
-        ("attribution: reduceat(part), capped = part * factor_dst (repeat, mul)", f + f + 3 * f),
-        ("attribution: reduceat(capped), share = capped * inv_target_dst", f + f + 3 * f),
+        ("attribution: part = max(c * sign_dst, 0) (repeat sign, mul, max), reduceat(part), reduceat(c)",
+         f + 3 * f + 2 * f + 2 * f),
         ("learn: cov += r (u^2 - cov) (mul, sub, mul, add)", 4 * 3 * f),
         ("learn: v = u / (cov (1 + ridge) + tiny) (3 ops)", 3 * 3 * f),
         ("learn: quad = reduceat(u * v)", 3 * f + f),
@@ -278,7 +287,7 @@ def main() -> None:
     del eng, data
     bw = bandwidth_gbs()
     bound_ms = per_edge * edges / (bw * 1e9) * 1e3
-    print("edge step estimate for the numpy path (the numba kernels fuse the learn rows):")
+    print(f"edge step estimate for the {flows.KERNEL} path:")
     print(f"  {len(passes)} pass groups, {per_edge} bytes/edge x {edges:,} edges = "
           f"{per_edge * edges / 1e9:.2f} GB per tick")
     for name, b in passes:
