@@ -471,16 +471,28 @@ class FlowLearner:
         pickled; None = this learner holds every out-link of its sources."""
 
     def __getstate__(self) -> dict:
+        """Learned state and settings only: the hook and the scratch buffers, run sums and
+        lookup tables (all rebuilt on demand) stay out of checkpoints."""
         state = dict(self.__dict__)
-        state["source_totals"] = None
+        state.update(source_totals=None, _buf={}, _seg=None, _tables={})
         return state
 
     def __setstate__(self, state: dict) -> None:
         state.setdefault("source_totals", None)
         self.__dict__.update(state)
 
-    def _global_totals(self, totals: np.ndarray) -> np.ndarray:
-        return totals if self.source_totals is None else np.asarray(self.source_totals(totals), np.float64)
+    def _cap_factor(self, totals: np.ndarray) -> np.ndarray | None:
+        """Per source the scale-down that brings its positive coefficients to ``cap``, from this
+        learner's per-source totals (summed over partitions by ``source_totals``); None when
+        no source is over the cap."""
+        if self.source_totals is not None:
+            totals = np.asarray(self.source_totals(totals), np.float64)
+        over = totals > self.settings.cap
+        if not over.any():
+            return None
+        factor = np.ones(totals.shape[0], self.dtype)
+        factor[over] = self.settings.cap / totals[over]
+        return factor
 
     # -- shape ---------------------------------------------------------------------------
     def _empty(self, n: int, src: np.ndarray, dst: np.ndarray) -> FlowState:
@@ -821,14 +833,9 @@ class FlowLearner:
         if s.cap is None or (st.n_edges == 0 and self.source_totals is None):
             return
         pos = np.maximum(beta, 0.0)
-        total = self._global_totals(sum_by(st.src, pos.sum(axis=0, dtype=float), st.n_nodes))
-        over = total > s.cap
-        if not over.any():
-            return
-        factor = np.ones(st.n_nodes)
-        factor[over] = s.cap / total[over]
-        f_e = factor[st.src].astype(self.dtype)
-        np.multiply(beta, f_e, out=beta, where=beta > 0)
+        factor = self._cap_factor(sum_by(st.src, pos.sum(axis=0, dtype=float), st.n_nodes))
+        if factor is not None:
+            np.multiply(beta, factor[st.src], out=beta, where=beta > 0)
 
     def _average(self, avg: np.ndarray, cur: np.ndarray, hours: np.ndarray, mask: np.ndarray) -> None:
         eta = self.settings.average_eta
@@ -959,13 +966,9 @@ class FlowLearner:
             ages, a0, a1, 1.0 / s.age_tau_hours if weighted else 0.0, table, self._hour_table("rate"), pull,
             s.ridge, _TINY, s.prior, s.beta_min, s.beta_max, s.step, s.eps, s.scale_rate,
             st.quad_mean, st.node_hours, raw, inflow, part_sum, totals, scratch)
-        if s.cap is not None:
-            total = self._global_totals(totals.sum(axis=0))
-            over = total > s.cap
-            if over.any():
-                factor = np.ones(n, self.dtype)
-                factor[over] = s.cap / total[over]
-                flow_kernels.scale(st.beta[0], st.src, factor)
+        factor = None if s.cap is None else self._cap_factor(totals.sum(axis=0))
+        if factor is not None:
+            flow_kernels.scale(st.beta[0], st.src, factor)
         st.hours += 1
         attribution = Attribution.from_parts(raw, st.dst, e.astype(np.float64), sign, part_sum, inflow)
         return FlowStep(predicted=inflow, attribution=attribution, updated=ok)
@@ -989,12 +992,8 @@ class FlowLearner:
         pull = self._hour_table("pull") if s.prior_pull > 0 else np.zeros(1, self.dtype)
         flow_kernels.step(u, gain, ok, st.src, st.dst, st.beta[0], st.edge_hours, pull, s.prior,
                      s.beta_min, s.beta_max, totals)
-        if s.cap is not None:
-            totals = self._global_totals(totals)
-        if s.cap is not None and (totals > s.cap).any():
-            factor = np.ones(st.n_nodes, self.dtype)
-            over = totals > s.cap
-            factor[over] = s.cap / totals[over]
+        factor = None if s.cap is None else self._cap_factor(totals)
+        if factor is not None:
             flow_kernels.scale(st.beta[0], st.src, factor)
         st.node_hours += ok
         st.hours += 1

@@ -110,9 +110,6 @@ class JointModel:
         self.born = born.astype(np.int32) if small else born  # hour ticks fit int32: half the bytes
         self._synced = key  # type: ignore[assignment]
 
-    def ages(self, tick: int) -> np.ndarray:
-        return (tick - self.born).astype(np.float64)
-
     # -- per hour ----------------------------------------------------------------------
     def forecast(self, prev_excess: np.ndarray, tick: int) -> np.ndarray:
         """Neighbour part of this hour's joint forecast (counts), before the hour is seen.

@@ -98,3 +98,30 @@ def test_spill_over_warning_for_a_downstream_node_over_capacity() -> None:
     assert [(w.node, w.via) for w in first] == [("/child", "/hub")]
     assert first[0].forecast > first[0].capacity == 900
     assert first[0].hour == "2026-11-16T18:00:00Z"  # the hour after the surge's first hour
+
+
+def test_ghost_source_uses_its_owners_figures_and_never_alerts() -> None:
+    """A partitioned worker's ghost: the hub, owned elsewhere, surges; the child's worker gets the
+    hub's count and its owner's expectation. The hub never alerts there, while the child's
+    alert is explained by it as in one engine holding both nodes."""
+    from alerter.engine import Foreign
+
+    hub, child = _hub_child(24 * 10, seed=5, surge_at=24 * 9 + 5)
+    whole, part = Engine(Config()), Engine(Config())
+    for eng in (whole, part):
+        eng.add_edge("/hub", "/child", T0)
+    ghost = np.array([True, False])
+    got_alerts, want_alerts, hub_alerts = [], [], []
+    for h in range(len(hub)):
+        hour = T0 + timedelta(hours=h)
+        want = whole.step(hour, {"/hub": hub[h], "/child": child[h]})
+        foreign = Foreign(mask=ghost, own=want.own_expected)  # the owner's figure for the hub
+        got = part.step_array(hour, part.counts_array({"/hub": hub[h], "/child": child[h]}), foreign=foreign)
+        assert got.own_expected[0] == want.own_expected[0]
+        got_alerts += got.alerts
+        want_alerts += [a for a in want.alerts if a.node == "/child"]
+        hub_alerts += [a for a in want.alerts if a.node == "/hub"]
+    assert hub_alerts  # the hub does surge: one engine holding it alerts on it
+    assert not [a for a in got_alerts if a.node == "/hub"]
+    assert got_alerts and [(a.hour, a.kind, a.upstream[0].node) for a in got_alerts] == \
+        [(a.hour, a.kind, a.upstream[0].node) for a in want_alerts]
