@@ -175,7 +175,14 @@ class LiveNames(_Strict):
     checkpoint: str = Field(constants.CHECKPOINT_KEY, min_length=1)
     group: str = Field(constants.GROUP, min_length=1)
     barrier: str = Field(constants.BARRIER_KEY, min_length=1)
-    barrier_done: str = Field(constants.BARRIER_DONE_KEY, min_length=1)
+
+    @field_validator("barrier")
+    @classmethod
+    def _hour_and_phase(cls, value: str) -> str:
+        if "@" not in value or constants.PHASE_MARK not in value:
+            raise ValueError(f"{value!r} must hold '@' (the hour) and '{constants.PHASE_MARK}' (the phase), "
+                             f"e.g. {constants.BARRIER_KEY!r}")
+        return value
 
 
 class LiveRetry(_Strict):
@@ -195,6 +202,8 @@ class LiveSettings(_Strict):
     partitions: int = Field(1, ge=1, le=1024)
     grace_seconds: float = Field(300.0, ge=0, le=86400)
     claim_idle_seconds: float = Field(60.0, gt=0)
+    barrier_timeout_seconds: float = Field(600.0, gt=0, le=86400)
+    barrier_ttl_seconds: int = Field(172800, ge=60, le=30 * 86400)
     read_count: int = Field(200, ge=1, le=100000)
     block_ms: int = Field(1000, ge=1, le=60000)
     batch_size: int = Field(20000, ge=1, le=1000000)
@@ -243,6 +252,16 @@ class SinkRoute(_Strict):
         return matches_any(node, self.match)
 
 
+class SinkUpdates(_Strict):
+    """Updates as edits of (or replies under) the incident's first message, for endpoints that
+    answer a post with a message id. Without this block every update is a short follow-up."""
+
+    id_field: str = Field(min_length=1, pattern=r"^[A-Za-z0-9_-]+(\.[A-Za-z0-9_-]+)*$")  # dotted path in the JSON answer
+    url_template: str = Field("$url/$message_id", min_length=1)  # $url: the sink's URL; $message_id: that id
+    method: Literal["POST", "PUT", "PATCH"] = "PATCH"
+    body_template: str | None = None  # default: the sink's body_template; may use $message_id too
+
+
 class SinkTarget(_Strict):
     """One sink fed from the outbox through its own consumer group."""
 
@@ -263,6 +282,7 @@ class SinkTarget(_Strict):
     stream_maxlen: int = Field(100000, ge=10)
     source: str = Field("/alerter", min_length=1)
     routes: list[SinkRoute] = []
+    updates: SinkUpdates | None = None
 
     @model_validator(mode="after")
     def _needs(self) -> SinkTarget:
@@ -275,6 +295,13 @@ class SinkTarget(_Strict):
         if self.kind == "webhook" and "$text" not in self.body_template and "$title" not in self.body_template:
             raise ValueError(f"sink {self.name!r}: body_template {self.body_template!r} must contain $text "
                              "(or $title), e.g. '{\"text\": $text}'")
+        if self.updates is not None and self.kind != "webhook":
+            raise ValueError(f"sink {self.name!r}: updates (edit or reply under the first message) works with "
+                             f"kind webhook only, not {self.kind}; remove the updates block")
+        if self.updates is not None and "$url" not in self.updates.url_template:
+            raise ValueError(f"sink {self.name!r}: updates.url_template {self.updates.url_template!r} must start "
+                             "from $url (the URL in url_env), e.g. '$url/messages/$message_id' or "
+                             "'$url?thread=$message_id'")
         return self
 
 

@@ -12,7 +12,7 @@ from enum import StrEnum
 
 __all__ = [
     "PARTITION_MARK", "INPUT_STREAM", "OUTBOX_STREAM", "DEAD_LETTER_STREAM", "LATE_STREAM",
-    "CHECKPOINT_KEY", "GROUP", "CONSUMER", "BARRIER_KEY", "BARRIER_DONE_KEY", "WIRE_VERSION",
+    "CHECKPOINT_KEY", "GROUP", "CONSUMER", "BARRIER_KEY", "PHASE_MARK", "WIRE_VERSION",
     "EntryType", "Encoding", "ServiceState", "partition_name",
 ]
 
@@ -49,13 +49,20 @@ GROUP = "alerter-service"
 # finds its own pending entries again (XREADGROUP ... 0).
 CONSUMER = "worker-1"
 
-# Per-hour barrier: a hash of partition -> packed excess of that partition's nodes, so each
-# worker can read the neighbour excesses it needs once every partition has closed the hour.
-# ``@`` stands for the hour (UTC, compact form); the tag keeps one hour's keys together.
-BARRIER_KEY = "alerter:{h@}:excess"
+# Per-hour exchange of a partitioned run: one hash per hour and phase, field = partition
+# number, value = what that partition publishes in the phase (see exchange.py): ``own``
+# (counts, own expectations and persisted excess of its nodes, before stepping), ``totals``
+# (per-source link-coefficient sums, for the conservation cap) and ``after`` (alerts,
+# nodes beyond their band, spill candidates, for the leader's incidents). ``@`` stands for
+# the hour (UTC, compact form) and ``%`` for the phase; the hash tag ``{h@}`` keeps one
+# hour's keys on one cluster slot. A hash (not a list) so that a restarted worker that
+# re-closes the hour overwrites its own field with the same bytes: publishing is
+# idempotent, and the number of fields is the number of partitions done. The keys expire
+# after ``live.barrier_ttl_seconds``, long after the slowest worker has passed the hour.
+BARRIER_KEY = "alerter:{h@}:sync:%"
 
-# Set of partitions that have published their excess for the hour (the barrier count).
-BARRIER_DONE_KEY = "alerter:{h@}:done"
+# Placeholder for the phase name in BARRIER_KEY.
+PHASE_MARK = "%"
 
 # Version tag written in every entry (field ``v``) so a reader can refuse what it does
 # not understand instead of guessing.

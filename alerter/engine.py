@@ -291,3 +291,32 @@ class Engine:
         unique = {(w.node, w.incident): w for w in out}
         return sorted(unique.values(), key=lambda w: (w.incident, w.node))
 
+
+    # -- partitioned mode ----------------------------------------------------------------
+    # What a worker of a partitioned run needs around ``step_array`` to publish its nodes'
+    # figures before the hour and to adopt its ghosts' figures from their owners. Each is
+    # the very expression ``step_array`` / ``_spills`` uses, so the owner and the one-worker
+    # engine compute the same numbers.
+    def own_expected(self, hour: datetime) -> np.ndarray:
+        """Each node's own seasonal expectation ``b`` for ``hour``, as ``step_array`` will use it
+        (the baseline's forecast before the hour's counts are learned); no state changes."""
+        slot, day = local_slots(hour, self.tz)
+        y_own = self.baseline.forecast(slot, day)
+        return np.maximum(self.baseline.from_working(y_own.astype(float)), 0.0)
+
+    def adopt_excess(self, mask: np.ndarray, excess: np.ndarray) -> None:
+        """Set the persisted excess of the ``mask`` nodes (ghosts) to their owners' values.
+
+        A ghost interned this hour has no past here; its owner's ``x - b`` of the previous
+        hour is what the one-worker engine would feed into the joint forecast.
+        """
+        self._grow()
+        self.prev_excess[mask] = excess[mask]
+
+    def next_load(self, hour: datetime) -> np.ndarray:
+        """Per node the forecast load of the hour after ``hour`` (call after stepping ``hour``):
+        the spill-over check's ``b_next + neighbour part``, for nodes whose links live here."""
+        nxt = hour + HOUR
+        slot, day = local_slots(nxt, self.tz)
+        b_next = np.maximum(self.baseline.from_working(self.baseline.forecast(slot, day).astype(float)), 0.0)
+        return b_next + self.joint.forecast(self.prev_excess, hour_index(hour) + 1)

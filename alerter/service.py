@@ -21,8 +21,6 @@ from datetime import UTC, datetime, timedelta
 from types import FrameType
 from typing import Any
 
-import numpy as np
-
 from .buckets import ClosedHour, close_due, dense_counts, next_close, watermark_due
 from .checkpoint import ServiceState, dump, load, peek
 from .config import Config, LiveNames
@@ -33,6 +31,7 @@ from .errors import BadEntryError
 from .incidents import IncidentUpdate
 from .records import Alert, dumps
 from .store import Entry, FieldsIn, Store, id_key, with_retry
+from .sync import ExchangeAbandoned, HourExchange
 from .timeaxis import format_hour
 from .wire import CountBatch, EdgeChange, decode_entry, fields_text
 
@@ -61,15 +60,13 @@ class Names:
     late: str
     checkpoint: str
     group: str
-    barrier: str
-    barrier_done: str
 
     @classmethod
     def of(cls, names: LiveNames, partition: int) -> Names:
         p = partition
         return cls(partition_name(names.input, p), partition_name(names.outbox, p),
                    partition_name(names.dead_letter, p), partition_name(names.late, p),
-                   partition_name(names.checkpoint, p), names.group, names.barrier, names.barrier_done)
+                   partition_name(names.checkpoint, p), names.group)
 
 
 @dataclass
@@ -101,6 +98,9 @@ class Service:
         self._to_ack: list[bytes] = []
         self._appends: list[tuple[str, FieldsIn]] = []
         self._dirty = False
+        self._last_claim = time.monotonic()
+        self.exchange = None if config.live.partitions == 1 else HourExchange(
+            config, store, partition, self._retry, self._stop.is_set)
 
     # -- lifecycle -------------------------------------------------------------------------
     def stop(self, *_: object) -> None:
@@ -129,6 +129,8 @@ class Service:
                     break
             self._set_phase(Phase.STOPPING)
             self._commit("shutdown")
+        except ExchangeAbandoned as exc:  # the hour in hand stays uncommitted: re-closed at restart
+            log.info("service stopped mid-hour partition=%d reason=%s", self.partition, exc)
         finally:
             if scheduler is not None:
                 scheduler.shutdown(wait=False)
@@ -297,7 +299,10 @@ class Service:
             self._apply_edge(edge)
         x = dense_counts(engine.nodes, closed.chunks)
         engine.ensure_nodes()
-        result = engine.step_array(closed.hour, x)
+        if self.exchange is None:
+            result = engine.step_array(closed.hour, x)
+        else:  # partitioned: ghosts from their owners, cap totals across, incidents at the leader
+            result = self.exchange.step(engine, closed.hour, x)
         hour = format_hour(closed.hour)
         for alert in result.alerts:
             self._appends.append((self.names.outbox, {"type": "alert", "key": idempotency_key(alert),
@@ -314,8 +319,6 @@ class Service:
             self._appends.append((self.names.outbox, {"type": "suppressed", "key": f"suppressed|{hour}",
                                                       "hour": hour, "reason": "cooldown",
                                                       **{k: str(v) for k, v in result.suppressed.items()}}))
-        if self.live.partitions > 1:
-            self._barrier(closed.hour, result.observed - result.expected)
         self.state.count("hours")
         self.state.count("alerts", len(result.alerts))
         self._dirty = True  # the engine moved on: this hour must be checkpointed
@@ -323,8 +326,9 @@ class Service:
         self.summary.hours.append(closed.hour)
         self.summary.alerts.extend(result.alerts)
         self.summary.incidents.extend(result.incidents)
-        log.info("hour closed hour=%s partition=%d entries=%d nodes=%d edges=%d alerts=%d took_ms=%.1f", hour,
-                 self.partition, closed.entries, len(engine.nodes), len(closed.edges), len(result.alerts),
+        log.info("hour closed hour=%s partition=%d entries=%d nodes=%d edges=%d alerts=%d waited_ms=%.1f "
+                 "took_ms=%.1f", hour, self.partition, closed.entries, len(engine.nodes), len(closed.edges),
+                 len(result.alerts), self.exchange.waited_ms if self.exchange else 0.0,
                  (time.perf_counter() - t0) * 1000)
         if self.on_alert is not None:
             for alert in result.alerts:
@@ -353,25 +357,3 @@ class Service:
         self._appends, self._to_ack, self._dirty = [], [], False
         log.debug("checkpoint why=%s epoch=%d bytes=%d appends=%d acked=%d took_ms=%.1f", why, epoch, len(blob),
                   len(appends), len(ids), (time.perf_counter() - t0) * 1000)
-
-    # -- scale-out barrier ---------------------------------------------------------------
-    def _barrier(self, hour: datetime, excess: np.ndarray) -> None:
-        """Publish this partition's excess for the hour; wait for all; read the neighbours'."""
-        from .wire import pack_excess
-
-        engine, parts = self.state.engine, self.live.partitions
-        tag = hour.strftime("%Y%m%d%H")
-        key, done = self.names.barrier.replace("@", tag), self.names.barrier_done.replace("@", tag)
-        blob = pack_excess(engine.nodes.ids, excess)
-        self._retry("barrier publish", lambda: self.store.publish_excess(key, done, self.partition, blob, 86400))
-        t0 = time.perf_counter()
-        while not self._stop.is_set():
-            count = self._retry("barrier count", lambda: self.store.barrier_count(done))
-            if isinstance(count, int) and count >= parts:
-                break
-            time.sleep(0.005)
-        needed = [p for p in range(parts) if p != self.partition]  # all others until the flow model says which
-        if needed:
-            self._retry("barrier read", lambda: self.store.read_excess(key, needed))
-        log.debug("barrier hour=%s partition=%d needed=%s waited_ms=%.1f", format_hour(hour), self.partition,
-                  needed, (time.perf_counter() - t0) * 1000)

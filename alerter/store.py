@@ -179,24 +179,95 @@ class Store:
                 return 0
         return self._do(f"XPENDING {stream}", run)
 
-    # -- barrier -----------------------------------------------------------------------
-    def publish_excess(self, key: str, done_key: str, partition: int, blob: bytes, ttl_s: int) -> None:
-        """Publish one partition's excess for an hour and mark it done (one MULTI/EXEC)."""
+    # -- per-hour exchange of a partitioned run ------------------------------------------
+    def exchange_put(self, key: str, partition: int, blob: bytes, ttl_s: int) -> None:
+        """Publish one partition's part of an hour's exchange: HSET its field (idempotent: a
+        re-closed hour writes the same bytes again) and refresh the key's TTL, in one MULTI."""
         def run() -> None:
             pipe = self.client.pipeline(transaction=True)
             pipe.hset(key, str(partition), blob)
-            pipe.sadd(done_key, str(partition))
             pipe.expire(key, ttl_s)
-            pipe.expire(done_key, ttl_s)
             pipe.execute()
-        self._do(f"barrier publish {key}", run)
+        self._do(f"HSET {key}", run)
 
-    def barrier_count(self, done_key: str) -> int:
-        return int(self._do(f"SCARD {done_key}", lambda: self.client.scard(done_key)))
-
-    def read_excess(self, key: str, partitions: Sequence[int]) -> list[bytes | None]:
+    def exchange_get(self, key: str, partitions: Sequence[int]) -> list[bytes | None]:
+        """The published parts of the given partitions (None where not published yet)."""
         fields = [str(p) for p in partitions]
         return self._do(f"HMGET {key}", lambda: list(self.client.hmget(key, fields)))  # type: ignore[arg-type]
+
+    # -- delivery ----------------------------------------------------------------------
+    # The sink workers' commands (delivery.py, digest.py, sink_cli.py): named here so every
+    # Redis call of delivery goes through this adapter and its error translation.
+    def transaction(self, what: str, build: Callable[[Any], object]) -> None:
+        """Queue ``build``'s commands on one MULTI/EXEC pipeline and run it (all or nothing)."""
+        def run() -> None:
+            pipe = self.client.pipeline(transaction=True)
+            build(pipe)
+            pipe.execute()
+        self._do(what, run)
+
+    def delivery_state(self, delivered: str, inflight: str, key: str) -> tuple[bool, bool]:
+        """(in the delivered-set, marked in flight) of one idempotency key, in one round trip."""
+        def run() -> tuple[bool, bool]:
+            pipe = self.client.pipeline(transaction=False)
+            pipe.zscore(delivered, key)
+            pipe.hexists(inflight, key)
+            done, flying = pipe.execute()
+            return done is not None, bool(flying)
+        return self._do(f"ZSCORE {delivered}", run)
+
+    def is_delivered(self, delivered: str, key: bytes | str) -> bool:
+        return self._do(f"ZSCORE {delivered}", lambda: self.client.zscore(delivered, key)) is not None
+
+    def hash_set(self, key: str, field_name: str, value: str) -> None:
+        self._do(f"HSET {key}", lambda: self.client.hset(key, field_name, value))
+
+    def hash_get(self, key: str, field_name: str) -> bytes | None:
+        return self._do(f"HGET {key}", lambda: self.client.hget(key, field_name))  # type: ignore[return-value]
+
+    def hash_all(self, key: str) -> dict[bytes, bytes]:
+        return dict(self._do(f"HGETALL {key}", lambda: self.client.hgetall(key)))  # type: ignore[arg-type]
+
+    def top_scores(self, key: str) -> list[tuple[bytes, float]]:
+        """A sorted set, highest score first, with its scores."""
+        return list(self._do(f"ZREVRANGE {key}", lambda: self.client.zrevrange(key, 0, -1, withscores=True)))  # type: ignore[arg-type]
+
+    def entries_before(self, stream: str, before: bytes | str, count: int) -> list[Entry]:
+        """Up to ``count`` entries strictly before id ``before``, newest first (XREVRANGE)."""
+        end = f"({before.decode() if isinstance(before, bytes) else before}"
+        client: Any = self.client
+        return self._do(f"XREVRANGE {stream}", lambda: list(client.xrevrange(stream, end, "-", count=count)))
+
+    def entries_after(self, stream: str, after: bytes | str, count: int) -> list[Entry]:
+        """Up to ``count`` entries strictly after id ``after``, oldest first (XRANGE)."""
+        start = f"({after.decode() if isinstance(after, bytes) else after}"
+        client: Any = self.client
+        return self._do(f"XRANGE {stream}", lambda: list(client.xrange(stream, start, "+", count=count)))
+
+    def recent(self, stream: str, count: int) -> list[Entry]:
+        """The last ``count`` entries of a stream, newest first."""
+        client: Any = self.client
+        return self._do(f"XREVRANGE {stream}", lambda: list(client.xrevrange(stream, count=count)))
+
+    def add_entry(self, stream: str, fields: FieldsIn, maxlen: int | None = None) -> bytes:
+        """One XADD, trimmed to about ``maxlen`` entries when given."""
+        client: Any = self.client
+        return self._do(f"XADD {stream}", lambda: client.xadd(stream, dict(fields), maxlen=maxlen,
+                                                              approximate=True))
+
+    def groups(self, stream: str) -> list[dict[str, Any]]:
+        """XINFO GROUPS of a stream (empty when the stream does not exist yet)."""
+        def run() -> list[dict[str, Any]]:
+            try:
+                return list(self.client.xinfo_groups(stream))  # type: ignore[arg-type]
+            except redis.ResponseError:
+                return []
+        return self._do(f"XINFO GROUPS {stream}", run)
+
+    def pending_ids(self, stream: str, group: str, count: int = 10000) -> set[bytes]:
+        """The ids a consumer group has read but not acknowledged."""
+        got = self._do(f"XPENDING {stream}", lambda: self.client.xpending_range(stream, group, "-", "+", count))
+        return {p["message_id"] for p in got}  # type: ignore[union-attr]
 
 
 def with_retry(fn: Callable[[], T], initial: float, ceiling: float, what: str,

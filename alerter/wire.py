@@ -32,7 +32,8 @@ from .errors import BadEntryError
 from .timeaxis import format_hour, parse_hour, parse_instant
 
 __all__ = ["CountBatch", "EdgeChange", "Decoded", "encode_count", "encode_batch", "encode_edge",
-           "decode_entry", "fields_text", "DEFAULT_MAX_BYTES", "partition_of", "pack_excess", "unpack_excess"]
+           "decode_entry", "fields_text", "DEFAULT_MAX_BYTES", "partition_of",
+           "pack_ids", "unpack_ids", "pack_table", "table_ids", "unpack_table"]
 
 DEFAULT_MAX_BYTES = 16 * 1024 * 1024
 _F64 = np.dtype("<f8")
@@ -254,7 +255,7 @@ def decode_entry(fields: Fields, max_bytes: int = DEFAULT_MAX_BYTES) -> Decoded:
     raise BadEntryError(f"unknown entry type={kind[:40]!r}; allowed: {allowed}")
 
 
-# --- partitions and the excess barrier ------------------------------------------------------
+# --- partitions and the per-hour exchange ------------------------------------------------
 
 def partition_of(node: str, partitions: int) -> int:
     """The partition that owns ``node``: a stable hash (CRC-32 of the UTF-8 id), not Python's.
@@ -267,14 +268,66 @@ def partition_of(node: str, partitions: int) -> int:
     return zlib.crc32(node.encode("utf-8")) % partitions
 
 
-def pack_excess(nodes: Sequence[str], excess: np.ndarray) -> bytes:
-    """One partition's excess for an hour: ids joined by newlines, a NUL, then float64."""
-    values = np.nan_to_num(np.asarray(excess, dtype=float), nan=0.0).astype(_F64, copy=False)
-    return "\n".join(nodes).encode("utf-8") + b"\0" + values.tobytes()
+def pack_ids(nodes: Sequence[str]) -> bytes:
+    """Node ids joined by newlines (UTF-8); a JSON array when an id itself holds a newline or
+    the first id starts with ``[`` (which would read as that array).
+
+    >>> pack_ids(["/a", "/b"])
+    b'/a\\n/b'
+    """
+    if any("\n" in n for n in nodes) or (len(nodes) > 0 and nodes[0].startswith("[")):
+        return b"[" + json.dumps(list(nodes), ensure_ascii=False)[1:].encode("utf-8")
+    return "\n".join(nodes).encode("utf-8")
 
 
-def unpack_excess(blob: bytes) -> dict[str, float]:
-    """The inverse of ``pack_excess``."""
-    head, _, body = blob.partition(b"\0")
-    ids = head.decode("utf-8").split("\n") if head else []
-    return dict(zip(ids, np.frombuffer(body, dtype=_F64).tolist(), strict=True))
+def unpack_ids(blob: bytes) -> list[str]:
+    """The inverse of :func:`pack_ids`."""
+    if blob.startswith(b"["):
+        return list(json.loads(blob.decode("utf-8")))
+    return blob.decode("utf-8").split("\n") if blob else []
+
+
+_TABLE = b"T1"
+
+
+def pack_table(ids: bytes, columns: np.ndarray) -> bytes:
+    """Rows keyed by node id for the per-hour exchange: ``ids`` (from :func:`pack_ids`) and
+    ``columns`` of shape (k, n), float64 little-endian, NaN kept.
+
+    Layout: ``T1``, k and the byte length of ``ids`` as two little-endian uint32, the ids,
+    then the k columns one after the other. The ids part is a separate slice so a reader can
+    tell an unchanged id list by comparing bytes, and keep its index mapping.
+
+    >>> ids, cols = unpack_table(pack_table(pack_ids(["/a", "/b"]), np.array([[1.0, np.nan]])))
+    >>> ids, cols.tolist()
+    (['/a', '/b'], [[1.0, nan]])
+    """
+    cols = np.ascontiguousarray(columns, dtype=_F64)
+    if cols.ndim != 2:
+        raise ValueError(f"columns must be 2-d (k, n), got shape {cols.shape}")
+    head = _TABLE + np.array([cols.shape[0], len(ids)], dtype="<u4").tobytes()
+    return head + ids + cols.tobytes()
+
+
+def table_ids(blob: bytes) -> bytes:
+    """The raw ids part of a :func:`pack_table` blob (for cache checks)."""
+    _, size = _table_head(blob)
+    return blob[10:10 + size]
+
+
+def _table_head(blob: bytes) -> tuple[int, int]:
+    if len(blob) < 10 or blob[:2] != _TABLE:
+        raise ValueError(f"not an exchange table (starts {blob[:10]!r}); a worker of another version wrote it")
+    k, size = np.frombuffer(blob[2:10], dtype="<u4").tolist()
+    return int(k), int(size)
+
+
+def unpack_table(blob: bytes, ids: list[str] | None = None) -> tuple[list[str], np.ndarray]:
+    """The inverse of :func:`pack_table`: (ids, columns of shape (k, n)). Pass ``ids`` when
+    they are already known (an unchanged list) to skip decoding them."""
+    k, size = _table_head(blob)
+    names = unpack_ids(blob[10:10 + size]) if ids is None else ids
+    body = np.frombuffer(blob, dtype=_F64, offset=10 + size)
+    if body.size != k * len(names):
+        raise ValueError(f"exchange table holds {body.size} numbers for {k} column(s) of {len(names)} ids")
+    return names, body.reshape(k, len(names))

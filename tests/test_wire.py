@@ -20,9 +20,12 @@ from alerter.wire import (
     encode_batch,
     encode_count,
     encode_edge,
-    pack_excess,
+    pack_ids,
+    pack_table,
     partition_of,
-    unpack_excess,
+    table_ids,
+    unpack_ids,
+    unpack_table,
 )
 
 H = parse_hour("2026-11-02T07:00:00Z")
@@ -121,7 +124,22 @@ def test_partition_hash_is_stable_and_spread() -> None:
     assert [partition_of(n, 4) for n in ("/", "/news", "/sports")] == [partition_of(n, 4) for n in ("/", "/news", "/sports")]
     owners = {partition_of(f"/n{i}", 4) for i in range(200)}
     assert owners == {0, 1, 2, 3}
-    assert unpack_excess(pack_excess(["/a", "/b"], np.array([1.5, np.nan]))) == {"/a": 1.5, "/b": 0.0}
+
+
+@given(st.lists(st.text(min_size=1, max_size=8), max_size=20, unique=True), st.integers(1, 3))
+def test_exchange_table_round_trip_keeps_ids_and_nan(ids: list[str], k: int) -> None:
+    """Ids with newlines or any unicode survive; NaN (a missing count) stays NaN, bit for bit."""
+    cols = np.random.default_rng(len(ids)).normal(size=(k, len(ids)))
+    cols[0, ::3] = np.nan
+    blob = pack_table(pack_ids(ids), cols)
+    got_ids, got = unpack_table(blob)
+    assert got_ids == ids and unpack_ids(table_ids(blob)) == ids
+    assert got.tobytes() == cols.tobytes()
+
+
+def test_exchange_table_refuses_a_foreign_blob() -> None:
+    with pytest.raises(ValueError, match="not an exchange table"):
+        unpack_table(b"/a\n/b\0" + np.zeros(2).tobytes())
 
 
 field_names = st.sampled_from(["v", "type", "node", "hour", "count", "enc", "nodes", "counts", "src", "dst", "ts", "x"])
