@@ -27,7 +27,7 @@ import threading
 import time
 from collections import OrderedDict
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 from typing import Any
 from zoneinfo import ZoneInfo
@@ -46,14 +46,19 @@ from .constants import (
 from .errors import SinkError, SinkSendError
 from .folding import TokenBucket, flush_fold, fold_entry
 from .incidents import IncidentUpdate
-from .messages import RenderOptions, render_update
-from .records import Alert, Upstream
-from .sinks import Outgoing, Sink, build_sink
+from .messages import RenderOptions, render_spill_note, render_update
+from .records import Alert, SpillWarning, Upstream
+from .sinks import Outgoing, Sent, Sink, build_sink
 
 __all__ = ["TokenBucket", "backoff_seconds", "retry_wait", "severity_of", "in_quiet_hours", "pick_route",
            "SinkWorker", "run_delivery", "sink_keys", "alert_from_json", "options_of"]
 
 log = logging.getLogger(__name__)
+# Defined here, next to its only use (constants.py belongs to the live path): per sink and
+# partition, a hash of incident id -> the message id the endpoint answered to the first post.
+MESSAGE_IDS_KEY = "alerter:{p#}:msgids:%"
+# Outbox entry types that are figures, not messages: acknowledged, counted by the digest.
+FIGURE_TYPES = ("suppressed",)
 SEVERITY_RANK = {"low": 0, "medium": 1, "high": 2}
 
 
@@ -116,6 +121,15 @@ def alert_from_json(text: str | bytes) -> Alert:
     return Alert(**data)
 
 
+def _update_from(text: bytes) -> IncidentUpdate:
+    data = json.loads(text)
+    return IncidentUpdate(**{**data, "members": tuple(data["members"]), "new_members": tuple(data["new_members"])})
+
+
+def _spill_from(text: bytes) -> SpillWarning:
+    return SpillWarning(**json.loads(text))
+
+
 def options_of(config: Config, target: SinkTarget) -> RenderOptions:
     s = config.sinks
     return RenderOptions(target.markup, s.max_id_chars, s.max_message_chars, s.top_upstream, s.max_members)
@@ -132,6 +146,7 @@ class SinkKeys:
     fold: str
     dead: str
     stats: str  # still has '@' for the UTC day
+    message_ids: str  # thread -> the endpoint's message id, for edits/replies (``updates``)
 
 
 def sink_keys(config: Config, sink: str, partition: int = 0) -> SinkKeys:
@@ -139,35 +154,27 @@ def sink_keys(config: Config, sink: str, partition: int = 0) -> SinkKeys:
         return partition_name(t, partition).replace(SINK_MARK, sink)
     return SinkKeys(partition_name(config.live.names.outbox, partition), SINK_GROUP_PREFIX + sink,
                     name(DELIVERED_KEY), name(INFLIGHT_KEY), name(FOLD_KEY), name(SINK_DEAD_STREAM),
-                    name(SINK_STATS_KEY))
+                    name(SINK_STATS_KEY), name(MESSAGE_IDS_KEY))
 
 
 @dataclass
 class _Keys:
-    """The delivery loop's Redis commands, through the Store's error translation."""
+    """The delivery loop's Redis commands: named methods of the Store (its error translation)."""
 
     store: Any
     k: SinkKeys
 
-    def run(self, what: str, fn: Callable[[Any], Any]) -> Any:
-        return self.store._do(what, lambda: fn(self.store.client))
-
     def txn(self, what: str, build: Callable[[Any], object]) -> None:
         """Queue ``build``'s commands on a MULTI/EXEC pipeline (its return value is ignored)."""
-        def go(client: Any) -> None:
-            pipe = client.pipeline(transaction=True)
-            build(pipe)
-            pipe.execute()
-        self.run(what, go)
+        self.store.transaction(what, build)
 
     def state(self, key: str) -> tuple[bool, bool]:
-        def go(client: Any) -> tuple[bool, bool]:
-            pipe = client.pipeline(transaction=False)
-            pipe.zscore(self.k.delivered, key)
-            pipe.hexists(self.k.inflight, key)
-            done, flying = pipe.execute()
-            return done is not None, bool(flying)
-        return self.run("ZSCORE delivered", go)
+        return self.store.delivery_state(self.k.delivered, self.k.inflight, key)
+
+    def message_id(self, thread: str) -> str | None:
+        """The endpoint's id of a thread's first message (``updates.id_field``), if one was kept."""
+        got = self.store.hash_get(self.k.message_ids, thread)
+        return got.decode() if got else None
 
 
 # --- the worker ------------------------------------------------------------------------------
@@ -194,6 +201,7 @@ class SinkWorker:
         self.bucket = TokenBucket(self.target.messages_per_minute)
         self.opts = options_of(self.config, self.target)
         self.joined: OrderedDict[str, dict[str, bytes]] = OrderedDict()
+        self.spills: OrderedDict[str, dict[str, bytes]] = OrderedDict()  # hour -> outbox key -> JSON
         self.store.ensure_group(self.keys.outbox, self.keys.group)
 
     def count(self, what: str, n: int = 1) -> None:
@@ -226,23 +234,75 @@ class SinkWorker:
             else:
                 self._ack(eid, "joined")
             return
+        if kind == "spill":
+            self._spill(eid, hour, fields)
+            return
+        if kind in FIGURE_TYPES:  # per-hour figures for the digest, never a message
+            self._ack(eid, "figures")
+            return
         if kind != "incident":
             self._ack(eid, "ignored")
             return
-        data = json.loads(fields[b"incident"])
-        update = IncidentUpdate(**{**data, "members": tuple(data["members"]),
-                                   "new_members": tuple(data["new_members"])})
+        update = _update_from(fields[b"incident"])
         route = pick_route(self.target.routes, update.root)
         held = self._held_back(update, route)
         if held:
             self._stat(held)
             self._ack(eid, held)
             return
-        alerts = self._alerts_for(update, eid)
-        r = render_update(update, alerts, (), self.opts)
+        alerts, spills = self._joined_for(update.hour, eid, update.members)
+        r = render_update(update, alerts, spills, self.opts)
         msg = Outgoing(fields[b"key"].decode(), "incident", hour, r.title, r.text, r.thread, r.revision, r.state,
                        update.root, update.to_dict(), route.url_env if route else None)
+        self.deliver(eid, self._in_place(msg))
+
+    def _in_place(self, msg: Outgoing) -> Outgoing:
+        """An update of a thread whose first message id is kept goes out as an edit/reply of it."""
+        if self.target.updates is None or msg.revision <= 1 or not msg.thread:
+            return msg
+        known = self.redis.message_id(msg.thread)
+        return replace(msg, edit_of=known) if known else msg
+
+    # -- spill-over warnings ----------------------------------------------------------------
+    def _spill(self, eid: bytes, hour: str, fields: dict[bytes, bytes]) -> None:
+        """Join a spill-over warning to its incident's update of the same hour, if there is one.
+
+        The service writes an hour's entries in one MULTI/EXEC (alerts, spills, incident
+        updates), so the update, when there is one, is already in the stream after this
+        entry. Without one, the hour's warnings of that incident go out as one short
+        follow-up (key ``spill|incident|hour``: its other spill entries find it delivered).
+        """
+        spill = _spill_from(fields[b"spill"])
+        self.spills.setdefault(hour, {})[fields[b"key"].decode()] = fields[b"spill"]
+        while len(self.spills) > self.config.sinks.join_hours:
+            self.spills.popitem(last=False)
+        later = self._rest_of_hour(eid, hour)
+        if any(f.get(b"type") == b"incident" and _update_from(f[b"incident"]).incident == spill.incident
+               for f in later):
+            self._ack(eid, "joined")
+            return
+        same = [_spill_from(v) for v in self.spills[hour].values()]
+        same += [_spill_from(f[b"spill"]) for f in later if f.get(b"type") == b"spill"]
+        mine = sorted({(w.node, w.hour): w for w in same if w.incident == spill.incident}.values(),
+                      key=lambda w: (w.node, w.hour))
+        title, text = render_spill_note(spill.incident, hour, mine, self.opts)
+        msg = Outgoing(f"spill|{spill.incident}|{hour}", "spill", hour, title, text, spill.incident, 0, "spill",
+                       spill.via, {"incident": spill.incident, "spills": [w.to_dict() for w in mine]})
         self.deliver(eid, msg)
+
+    def _rest_of_hour(self, eid: bytes, hour: str) -> list[dict[bytes, bytes]]:
+        """The outbox entries after ``eid`` that belong to the same hour (read ahead)."""
+        out: list[dict[bytes, bytes]] = []
+        after: bytes = eid
+        while True:
+            got = self.store.entries_after(self.keys.outbox, after, self.config.sinks.read_count)
+            for next_id, fields in got:
+                if fields.get(b"hour", b"").decode() != hour:
+                    return out
+                out.append(fields)
+                after = next_id
+            if len(got) < self.config.sinks.read_count:
+                return out
 
     def _held_back(self, update: IncidentUpdate, route: SinkRoute | None) -> str | None:
         """Why routing holds this update back (None = send it)."""
@@ -266,27 +326,31 @@ class SinkWorker:
         while len(self.joined) > self.config.sinks.join_hours:
             self.joined.popitem(last=False)
 
-    def _alerts_for(self, update: IncidentUpdate, eid: bytes) -> list[Alert]:
-        if update.hour not in self.joined:
-            self._backfill(update.hour, eid)
-        bucket = self.joined.get(update.hour, {})
-        return [alert_from_json(bucket[m]) for m in update.members if m in bucket]
+    def _joined_for(self, hour: str, eid: bytes, members: tuple[str, ...]
+                    ) -> tuple[list[Alert], list[SpillWarning]]:
+        """The members' alerts and the spill-over warnings of the same hour (from memory or the outbox)."""
+        if hour not in self.joined:
+            self._backfill(hour, eid)
+        bucket = self.joined.get(hour, {})
+        spills = [_spill_from(v) for v in self.spills.get(hour, {}).values()]
+        return [alert_from_json(bucket[m]) for m in members if m in bucket], spills
 
     def _backfill(self, hour: str, before: bytes) -> None:
-        """After a restart: read the hour's alerts back from the outbox, newest first."""
-        end, n = f"({before.decode()}", self.config.sinks.read_count
+        """After a restart: read the hour's alerts and spills back from the outbox, newest first."""
+        end, n = before, self.config.sinks.read_count
+        self.joined.setdefault(hour, {})
         while True:
-            def page(c: Any, end: str = end) -> Any:
-                return c.xrevrange(self.keys.outbox, end, "-", count=n)
-            got = self.redis.run("XREVRANGE outbox", page)
+            got = self.store.entries_before(self.keys.outbox, end, n)
             for _eid, fields in got:
                 if fields.get(b"hour", b"").decode() != hour:
                     return
                 if fields.get(b"type") == b"alert":
-                    self.joined.setdefault(hour, {}).setdefault(fields[b"node"].decode(), fields[b"alert"])
+                    self.joined[hour].setdefault(fields[b"node"].decode(), fields[b"alert"])
+                elif fields.get(b"type") == b"spill":
+                    self.spills.setdefault(hour, {}).setdefault(fields[b"key"].decode(), fields[b"spill"])
             if len(got) < n:
                 return
-            end = f"({got[-1][0].decode()}"
+            end = got[-1][0]
 
     def _alert_message(self, fields: dict[bytes, bytes]) -> Outgoing:
         from .messages import render_alert
@@ -316,7 +380,7 @@ class SinkWorker:
         retry = self.config.sinks.retry
         assert self.sink is not None
         for attempt in range(1, retry.max_attempts + 1):
-            self.redis.run("HSET inflight", lambda c: c.hset(self.keys.inflight, msg.key, str(self.clock())))
+            self.store.hash_set(self.keys.inflight, msg.key, str(self.clock()))
             try:
                 sent = self.sink.send(msg)
             except SinkError as exc:
@@ -331,9 +395,24 @@ class SinkWorker:
                 self.count("retries")
                 self.sleep(wait)
                 continue
-            log.info("sink delivered sink=%s key=%s status=%s", self.target.name, msg.key, sent.status)
-            return self._finish(eid, "summary" if msg.entry_type == "fold" else "delivered", extra, msg.key)
+            log.info("sink delivered sink=%s key=%s status=%s edit_of=%s", self.target.name, msg.key, sent.status,
+                     msg.edit_of or "-")
+            return self._finish(eid, "summary" if msg.entry_type == "fold" else "delivered",
+                                self._keep_message_id(msg, sent, extra), msg.key)
         return "dead"  # pragma: no cover - the loop always returns
+
+    def _keep_message_id(self, msg: Outgoing, sent: Sent, extra: Callable[[Any], None] | None
+                         ) -> Callable[[Any], None] | None:
+        """With ``updates`` set: the first post's message id joins the delivered-set transaction,
+        so it survives a restart (a crash before it loses only the edit: later updates follow up)."""
+        if self.target.updates is None or not sent.message_id or msg.edit_of or msg.entry_type != "incident":
+            return extra
+
+        def build(pipe: Any) -> None:
+            pipe.hsetnx(self.keys.message_ids, msg.thread, sent.message_id)
+            if extra is not None:
+                extra(pipe)
+        return build
 
     def _finish(self, eid: bytes | None, outcome: str, extra: Callable[[Any], None] | None,
                 delivered: str | None = None) -> str:

@@ -5,8 +5,10 @@ and the delivery counters from Redis and sends through the normal delivery path 
 retries, delivered-set: one digest per sink and day); ``start_digest_job`` schedules it
 with APScheduler at ``sinks.digest.local_time`` in ``clock.timezone``.
 
-Cooldown suppressions are not written to the outbox by the engine, so the digest can only
-report what delivery itself held back (rate limit, quiet hours, severity, no route).
+Suppressions come from two places: the service writes one ``type=suppressed`` outbox entry
+per closed hour in which the rules held alerts back by cooldown (fields ``surge`` and
+``drop``), counted here as ``cooldown``; delivery counts what it held back itself (rate
+limit, quiet hours, severity, no route) in the per-sink daily stats hash.
 """
 
 from __future__ import annotations
@@ -39,9 +41,12 @@ def summarise(entries: Iterable[tuple[bytes, dict[bytes, bytes]]], top: int) -> 
     """Figures of a span of outbox entries (pure)."""
     last_state: dict[str, str] = {}
     surge: dict[str, float] = {}
+    cooldown = 0
     for _, fields in entries:
         kind = fields.get(b"type")
-        if kind == b"incident":
+        if kind == b"suppressed" and fields.get(b"reason", b"cooldown") == b"cooldown":
+            cooldown += sum(int(fields.get(d, b"0") or 0) for d in (b"surge", b"drop"))
+        elif kind == b"incident":
             data = json.loads(fields[b"incident"])
             last_state[data["incident"]] = data["state"]
         elif kind == b"alert" and fields.get(b"kind") == b"surge":
@@ -51,7 +56,7 @@ def summarise(entries: Iterable[tuple[bytes, dict[bytes, bytes]]], top: int) -> 
     for s in last_state.values():
         states[s] = states.get(s, 0) + 1
     ranked = sorted(surge.items(), key=lambda kv: (-kv[1], kv[0]))[:top]
-    return DigestFigures(len(last_state), states, ranked)
+    return DigestFigures(len(last_state), states, ranked, {"cooldown": cooldown} if cooldown else {})
 
 
 def post_digest(config: Config, store: Any, now: datetime | None = None, partition: int = 0) -> dict[str, str]:
@@ -60,8 +65,9 @@ def post_digest(config: Config, store: Any, now: datetime | None = None, partiti
     since = now - timedelta(hours=24)
     outbox = sink_keys(config, "-", partition).outbox
     start = f"{int(since.timestamp() * 1000)}-0"
-    entries = store._do("XRANGE outbox", lambda: store.client.xrange(outbox, start, "+"))
+    entries = store.entries(outbox, start)
     figures = summarise(entries, config.sinks.digest.top)
+    cooldown = dict(figures.suppressed)  # the service's figures; each sink adds its own below
     names = set(config.sinks.digest.sinks)
     out: dict[str, str] = {}
     for target in config.sinks.targets:
@@ -69,8 +75,7 @@ def post_digest(config: Config, store: Any, now: datetime | None = None, partiti
             continue
         worker = SinkWorker(config, target, store, partition=partition)
         for day in (now, since):
-            stats = store._do("HGETALL", lambda d=day, w=worker: store.client.hgetall(
-                w.keys.stats.replace("@", d.strftime("%Y%m%d"))))
+            stats = store.hash_all(worker.keys.stats.replace("@", day.strftime("%Y%m%d")))
             for k, v in stats.items():
                 figures.suppressed[k.decode()] = figures.suppressed.get(k.decode(), 0) + int(v)
         text = render_digest_text(since.strftime("%Y-%m-%dT%H:%M:%SZ"), now.strftime("%Y-%m-%dT%H:%M:%SZ"),
@@ -80,7 +85,7 @@ def post_digest(config: Config, store: Any, now: datetime | None = None, partiti
                        now.strftime("%Y-%m-%dT%H:00:00Z"), "daily digest", text,
                        record={"incidents": figures.incidents})
         out[target.name] = worker.deliver(None, msg)
-        figures.suppressed = {}
+        figures.suppressed = dict(cooldown)
     return out
 
 

@@ -71,12 +71,12 @@ def fold_entry(worker: SinkWorker, eid: bytes, msg: Outgoing) -> None:
 def flush_fold(worker: SinkWorker) -> str | None:
     """Send the held-back summary when the rate limit has a token for it."""
     k = worker.keys
-    fold = worker.redis.run("HGETALL fold", lambda c: c.hgetall(k.fold))
+    fold = worker.store.hash_all(k.fold)
     if not fold or worker.bucket.available(worker.clock()) < 1.0:
         return None
     worker.bucket.take(worker.clock())
     f = {a.decode(): b.decode() for a, b in fold.items()}
-    top = worker.redis.run("ZRANGE fold top", lambda c: c.zrevrange(k.fold + ":top", 0, -1, withscores=True))
+    top = worker.store.top_scores(k.fold + ":top")
     states = {s[6:]: int(v) for s, v in f.items() if s.startswith("state:")}
     text = render_fold_summary(int(f["count"]), f["first_hour"], f["last_hour"], states,
                                [(n.decode(), v) for n, v in top], worker.target.messages_per_minute, worker.opts)

@@ -22,7 +22,7 @@ from .incidents import IncidentUpdate
 from .records import Alert, SpillWarning
 
 __all__ = ["RenderOptions", "Rendered", "escape", "truncate", "human_number", "percent_above",
-           "render_update", "render_alert", "render_fold_summary", "render_digest_text", "render_demo_messages",
+           "render_update", "render_spill_note", "render_alert", "render_fold_summary", "render_digest_text", "render_demo_messages",
            "ESTIMATE_LINE"]
 
 ESTIMATE_LINE = ("Note: the upstream sources and shares are estimates from learned link shares, "
@@ -216,6 +216,15 @@ def _fit(text: str, limit: int) -> str:
         return text
     keep = limit - len(ESTIMATE_LINE) - 1
     return truncate(text[: max(keep, 1) + 1], max(keep, 1)) + "\n" + ESTIMATE_LINE
+
+
+def render_spill_note(incident: str, hour: str, spills: Sequence[SpillWarning],
+                      opts: RenderOptions = RenderOptions()) -> tuple[str, str]:
+    """A short follow-up for spill-over warnings of an hour in which the incident had no update."""
+    title = (f"{_bold('[SPILL-OVER]', opts)} incident {_esc(incident, opts)}: {len(spills)} downstream "
+             f"node{'s' if len(spills) != 1 else ''} forecast over capacity after {_hour(hour)}")
+    text = "\n".join([title, *_spill_lines(spills, incident, opts), ESTIMATE_LINE])
+    return title, _fit(text, opts.max_message_chars)
 
 
 def render_alert(alert: Alert, opts: RenderOptions = RenderOptions()) -> tuple[str, str]:

@@ -24,14 +24,14 @@ from datetime import UTC, datetime
 from email.utils import parsedate_to_datetime
 from pathlib import Path
 from typing import Any, Protocol
-from urllib.parse import urlsplit
+from urllib.parse import quote, urlsplit
 
-from .config import SinkTarget
+from .config import SinkTarget, SinkUpdates
 from .errors import SinkError, SinkSendError
 
 __all__ = ["Outgoing", "Sent", "Sink", "WebhookSink", "CloudEventsSink", "JsonlSink", "RedisStreamSink",
            "build_sink", "redact_url", "parse_retry_after", "classify_status", "render_body", "cloud_event",
-           "resolve_url"]
+           "resolve_url", "answer_field", "update_url"]
 
 USER_AGENT = "alerter-sinks/1"
 
@@ -51,6 +51,7 @@ class Outgoing:
     subject: str = ""
     record: dict[str, Any] = field(default_factory=dict)
     url_env: str | None = None  # a route's webhook variable, else the sink's
+    edit_of: str | None = None  # the endpoint's id of the thread's first message: edit/reply under it
 
 
 @dataclass(frozen=True)
@@ -59,6 +60,7 @@ class Sent:
 
     status: int
     detail: str = ""
+    message_id: str | None = None  # from the answer's ``updates.id_field``, when configured
 
 
 class Sink(Protocol):
@@ -164,63 +166,111 @@ def resolve_url(env_name: str, sink: str) -> str:
     return url
 
 
+def answer_field(answer: str, path: str) -> str | None:
+    """The value at a dotted ``path`` of a JSON answer, as text; None when absent or not JSON.
+
+    >>> answer_field('{"message": {"id": 42}}', "message.id"), answer_field("ok", "id")
+    ('42', None)
+    """
+    try:
+        value: Any = json.loads(answer)
+    except ValueError:
+        return None
+    for part in path.split("."):
+        if not isinstance(value, dict) or part not in value:
+            return None
+        value = value[part]
+    return None if value is None or isinstance(value, (dict, list)) else str(value)
+
+
+def update_url(template: str, url: str, message_id: str) -> str:
+    """The edit/reply URL: ``$url`` is the sink's URL, ``$message_id`` the id, percent-encoded.
+
+    >>> update_url("$url/messages/$message_id", "http://h/hook", "a/b c")
+    'http://h/hook/messages/a%2Fb%20c'
+    """
+    return string.Template(template).safe_substitute(url=url, message_id=quote(message_id, safe=""))
+
+
 # --- HTTP ------------------------------------------------------------------------------------
 
+ANSWER_LIMIT = 65536  # bytes of an answer read (enough for a message id; a huge answer is not kept)
+
+
 def _post(url: str, body: bytes, headers: dict[str, str], timeout: float, sink: str,
-          now: Callable[[], datetime]) -> Sent:
-    """One POST; 2xx returns, anything else raises SinkSendError (retryable or not)."""
+          now: Callable[[], datetime], method: str = "POST") -> Sent:
+    """One request; 2xx returns, anything else raises SinkSendError (retryable or not)."""
     where = redact_url(url)
-    request = urllib.request.Request(url, data=body, method="POST", headers={"User-Agent": USER_AGENT, **headers})
+    request = urllib.request.Request(url, data=body, method=method, headers={"User-Agent": USER_AGENT, **headers})
     try:
         with urllib.request.urlopen(request, timeout=timeout) as response:  # noqa: S310 - http(s) checked
-            return Sent(response.status, response.read(200).decode("utf-8", "replace"))
+            return Sent(response.status, response.read(ANSWER_LIMIT).decode("utf-8", "replace"))
     except urllib.error.HTTPError as exc:
         detail = exc.read(200).decode("utf-8", "replace") if exc.fp else ""
         _, retry = classify_status(exc.code)
         wait = parse_retry_after(exc.headers.get("Retry-After"), now()) if exc.code == 429 else None
-        raise SinkSendError(f"sink {sink!r}: POST {where} answered {exc.code} {detail[:80]!r}",
+        raise SinkSendError(f"sink {sink!r}: {method} {where} answered {exc.code} {detail[:80]!r}",
                             retryable=retry, status=exc.code, retry_after=wait) from None
     except (urllib.error.URLError, TimeoutError, ConnectionError, OSError) as exc:
         reason = getattr(exc, "reason", exc)
-        raise SinkSendError(f"sink {sink!r}: POST {where} failed: {reason}; check the endpoint is up and "
+        raise SinkSendError(f"sink {sink!r}: {method} {where} failed: {reason}; check the endpoint is up and "
                             f"reachable, and timeout_seconds ({timeout})", retryable=True) from None
 
 
 @dataclass
-class WebhookSink:
-    """Chat incoming webhook: JSON body from ``body_template``; route URLs override the default."""
+class _HttpSink:
+    """What the HTTP sinks share: the URL from the environment, the timeout, the clock, one POST."""
 
     name: str
     url_env: str
-    template: str
     timeout: float = 10.0
     now: Callable[[], datetime] = lambda: datetime.now(UTC)
 
-    def send(self, msg: Outgoing) -> Sent:
-        url = resolve_url(msg.url_env or self.url_env, self.name)
-        body = render_body(self.template, {"text": msg.text, "title": msg.title, "thread": msg.thread,
-                                           "revision": msg.revision, "state": msg.state, "key": msg.key,
-                                           "hour": msg.hour})
-        headers = {"Content-Type": "application/json; charset=utf-8", "Idempotency-Key": msg.key,
-                   "X-Alerter-Thread": msg.thread, "X-Alerter-Revision": str(msg.revision)}
-        return _post(url, body, headers, self.timeout, self.name, self.now)
+    def _url(self, msg: Outgoing) -> str:
+        return resolve_url(msg.url_env or self.url_env, self.name)
+
+    def _request(self, url: str, body: bytes, headers: dict[str, str], method: str = "POST") -> Sent:
+        return _post(url, body, headers, self.timeout, self.name, self.now, method)
 
 
 @dataclass
-class CloudEventsSink:
-    """CloudEvents 1.0 structured mode: the whole event is the JSON body."""
+class WebhookSink(_HttpSink):
+    """Chat incoming webhook: JSON body from ``body_template``; route URLs override the default.
 
-    name: str
-    url_env: str
-    source: str
-    timeout: float = 10.0
-    now: Callable[[], datetime] = lambda: datetime.now(UTC)
+    With ``updates`` set, the first post's answer gives the message id (``updates.id_field``)
+    and an update that carries it (``Outgoing.edit_of``) goes to ``updates.url_template``
+    with ``updates.method``: an edit of that message or a reply under it.
+    """
+
+    template: str = '{"text": $text}'
+    updates: SinkUpdates | None = None
 
     def send(self, msg: Outgoing) -> Sent:
-        url = resolve_url(msg.url_env or self.url_env, self.name)
+        url, method, template = self._url(msg), "POST", self.template
+        if msg.edit_of and self.updates is not None:
+            url, method = update_url(self.updates.url_template, url, msg.edit_of), self.updates.method
+            template = self.updates.body_template or self.template
+        body = render_body(template, {"text": msg.text, "title": msg.title, "thread": msg.thread,
+                                      "revision": msg.revision, "state": msg.state, "key": msg.key,
+                                      "hour": msg.hour, "message_id": msg.edit_of or ""})
+        headers = {"Content-Type": "application/json; charset=utf-8", "Idempotency-Key": msg.key,
+                   "X-Alerter-Thread": msg.thread, "X-Alerter-Revision": str(msg.revision)}
+        sent = self._request(url, body, headers, method)
+        found = answer_field(sent.detail, self.updates.id_field) if self.updates and not msg.edit_of else None
+        return Sent(sent.status, sent.detail[:200], found)
+
+
+@dataclass
+class CloudEventsSink(_HttpSink):
+    """CloudEvents 1.0 structured mode: the whole event is the JSON body."""
+
+    source: str = "/alerter"
+
+    def send(self, msg: Outgoing) -> Sent:
         body = json.dumps(cloud_event(msg, self.source), ensure_ascii=False, sort_keys=True).encode("utf-8")
         headers = {"Content-Type": "application/cloudevents+json; charset=utf-8", "Idempotency-Key": msg.key}
-        return _post(url, body, headers, self.timeout, self.name, self.now)
+        sent = self._request(self._url(msg), body, headers)
+        return Sent(sent.status, sent.detail[:200])
 
 
 # --- files and streams -----------------------------------------------------------------------
@@ -228,7 +278,10 @@ class CloudEventsSink:
 @dataclass
 class JsonlSink:
     """Append one JSON line per message; rotate when the file would pass ``rotate_bytes``
-    or when the UTC day changed since the file was started."""
+    or when the UTC day (of ``now``, the injected clock) changed since the last line.
+
+    The file's modification time is set from ``now`` on every append, so the day it was last
+    written survives a restart and rotation never depends on the machine's clock alone."""
 
     name: str
     path: Path
@@ -262,6 +315,8 @@ class JsonlSink:
                 handle.write(data)
                 handle.flush()
                 os.fsync(handle.fileno())
+            stamp = self.now().timestamp()  # the file's time follows the sink's clock: rotation is by its day
+            os.utime(self.path, (stamp, stamp))
         except OSError as exc:
             raise SinkSendError(f"sink {self.name!r}: cannot append to {self.path}: {exc.strerror}; check the "
                                 "folder exists and is writable", retryable=True) from None
@@ -283,8 +338,7 @@ class RedisStreamSink:
         fields = {"key": msg.key, "type": msg.entry_type, "hour": msg.hour, "title": msg.title,
                   "text": msg.text, "thread": msg.thread, "revision": str(msg.revision), "state": msg.state}
         try:
-            eid = self.store._do(f"XADD {self.stream}", lambda: self.store.client.xadd(
-                self.stream, fields, maxlen=self.maxlen, approximate=True))
+            eid = self.store.add_entry(self.stream, fields, self.maxlen)
         except StoreError as exc:
             raise SinkSendError(f"sink {self.name!r}: {exc}", retryable=True) from None
         return Sent(0, eid.decode() if isinstance(eid, bytes) else str(eid))
@@ -294,9 +348,10 @@ def build_sink(target: SinkTarget, store: Any = None, now: Callable[[], datetime
     """The sink object for one configured target."""
     clock = now or (lambda: datetime.now(UTC))
     if target.kind == "webhook":
-        return WebhookSink(target.name, str(target.url_env), target.body_template, target.timeout_seconds, clock)
+        return WebhookSink(target.name, str(target.url_env), target.timeout_seconds, clock,
+                           template=target.body_template, updates=target.updates)
     if target.kind == "cloudevents":
-        return CloudEventsSink(target.name, str(target.url_env), target.source, target.timeout_seconds, clock)
+        return CloudEventsSink(target.name, str(target.url_env), target.timeout_seconds, clock, source=target.source)
     if target.kind == "jsonl":
         return JsonlSink(target.name, Path(str(target.path)), target.rotate_bytes, target.rotate_daily, clock)
     if store is None:
