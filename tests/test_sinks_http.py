@@ -8,7 +8,7 @@ import signal
 import subprocess
 import sys
 import threading
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
@@ -18,7 +18,7 @@ import pytest
 from alerter.config import Config, SinkSettings, SinkTarget
 from alerter.delivery import SinkWorker, sink_keys
 from alerter.incidents import IncidentUpdate
-from alerter.records import Alert, Upstream, dumps
+from alerter.records import Alert, SpillWarning, Upstream, dumps
 from alerter.store import Store
 
 from .conftest_redis import redis_url, store  # noqa: F401 - fixtures
@@ -37,6 +37,7 @@ class Hook:
     received: threading.Event = field(default_factory=threading.Event)
     hold: threading.Event | None = None  # when set: wait for it before answering (crash tests)
     lock: threading.Lock = field(default_factory=threading.Lock)
+    reply: Callable[[dict], bytes] | None = None  # body of a 2xx answer from the request (default b"ok")
 
 
 @pytest.fixture
@@ -47,21 +48,25 @@ def hook() -> Iterator[Hook]:
         def do_POST(self) -> None:  # noqa: N802 - http.server naming
             body = self.rfile.read(int(self.headers.get("Content-Length", 0)))
             with state.lock:
-                state.posts.append({"headers": {k.lower(): v for k, v in self.headers.items()},
-                                    "body": json.loads(body), "path": self.path})
+                post = {"headers": {k.lower(): v for k, v in self.headers.items()}, "body": json.loads(body),
+                        "path": self.path, "method": self.command}
+                state.posts.append(post)
                 status, headers = state.script.pop(0) if state.script else (200, {})
+                answer = state.reply(post) if state.reply is not None and status < 300 else b"ok"
             state.received.set()
             if state.hold is not None:
                 state.hold.wait(30)
             self.send_response(status)
             for k, v in headers.items():
                 self.send_header(k, v)
-            self.send_header("Content-Length", "2")
+            self.send_header("Content-Length", str(len(answer)))
             self.end_headers()
             try:
-                self.wfile.write(b"ok")
+                self.wfile.write(answer)
             except BrokenPipeError:  # the crash test killed the client while we held the answer
                 pass
+
+        do_PATCH = do_PUT = do_POST  # noqa: N815 - edits of a message (``updates.method``)
 
         def log_message(self, *args: object) -> None:
             pass
@@ -91,15 +96,23 @@ def update(inc: str, rev: int, hour: str, members: tuple[str, ...], state: str =
                           total_excess=excess)
 
 
-def push_hour(st: Store, alerts: list[Alert], updates: list[IncidentUpdate]) -> None:
-    """Write entries the way the service does: the hour's alerts, then its incident updates."""
+def push_hour(st: Store, alerts: list[Alert], updates: list[IncidentUpdate], spills: Sequence[SpillWarning] = (),
+              hour: str | None = None, suppressed: dict[str, int] | None = None) -> None:
+    """Write entries the way the service does (``Service._close``): the hour's alerts, its
+    spill-over warnings, its incident updates, then the cooldown figures of the hour."""
     rows: list[dict[str, str]] = []
     for a in alerts:
         rows.append({"type": "alert", "key": f"{a.node}|{a.hour}|{a.kind}", "node": a.node, "hour": a.hour,
                      "kind": a.kind, "alert": dumps(a)})
+    for w in spills:
+        rows.append({"type": "spill", "key": f"spill|{w.incident}|{w.node}|{w.hour}", "hour": str(hour),
+                     "spill": dumps(w)})
     for u in updates:
         rows.append({"type": "incident", "key": f"incident|{u.incident}|{u.revision}", "hour": u.hour,
                      "incident": dumps(u)})
+    if suppressed:
+        rows.append({"type": "suppressed", "key": f"suppressed|{hour}", "hour": str(hour), "reason": "cooldown",
+                     **{k: str(v) for k, v in suppressed.items()}})
     st.append(OUT, rows)
 
 
