@@ -21,9 +21,9 @@ from typing import Literal
 from .incidents import IncidentUpdate
 from .records import Alert, SpillWarning
 
-__all__ = ["RenderOptions", "Rendered", "escape", "truncate", "human_number", "percent_above",
-           "render_update", "render_spill_note", "render_alert", "render_fold_summary", "render_digest_text", "render_demo_messages",
-           "ESTIMATE_LINE"]
+__all__ = ["RenderOptions", "Rendered", "escape", "truncate", "human_number", "percent_above", "state_word",
+           "render_update", "render_spill_note", "render_alert", "render_fold_summary", "render_digest_text",
+           "render_demo_messages", "ESTIMATE_LINE"]
 
 ESTIMATE_LINE = ("Note: the upstream sources and shares are estimates from learned link shares, "
                  "not proof of cause.")
@@ -34,7 +34,6 @@ _MENTION = re.compile(r"([@#!])(?=[\w!])", re.UNICODE)
 _LINK = re.compile(r"(://|www\.)", re.IGNORECASE)
 _MD_PUNCT = re.compile(r"([\\`*_\[\]()#|~])")
 _HTML = {"&": "&amp;", "<": "&lt;", ">": "&gt;"}
-_STATE_WORD = {"open": "new", "growing": "growing", "subsiding": "subsiding", "closed": "closed"}
 
 
 @dataclass(frozen=True)
@@ -152,9 +151,19 @@ def _alert_lines(alert: Alert, opts: RenderOptions) -> list[str]:
     return lines
 
 
+def state_word(revision: int, state: str) -> str:
+    """The header's state word: "new" only on an incident's first message; every later
+    revision shows its real state, so a re-activated incident (state "open" again) reads
+    "open" and is never taken for a second incident.
+
+    >>> [state_word(r, s) for r, s in ((1, "open"), (2, "growing"), (4, "open"), (5, "closed"))]
+    ['new', 'growing', 'open', 'closed']
+    """
+    return "new" if revision <= 1 and state == "open" else state
+
+
 def _title(update: IncidentUpdate, opts: RenderOptions) -> str:
-    word = _STATE_WORD.get(update.state, update.state)
-    tag = f"{update.direction} {word}".upper()
+    tag = f"{update.direction} {state_word(update.revision, update.state)}".upper()
     return (f"{_bold('[' + tag + ']', opts)} incident {_esc(update.incident, opts)} "
             f"rooted at {_esc(update.root, opts)}")
 

@@ -118,3 +118,19 @@ def test_demo_messages_one_per_update_in_order() -> None:
     assert "incident a" in msgs[0] and "observed 3.4k" in msgs[0]
     assert "incident b" in msgs[1] and "CLOSED" in msgs[2]
     assert all(ESTIMATE_LINE in m for m in msgs)
+
+
+@pytest.mark.parametrize(("revision", "state", "direction", "tag"), [
+    (1, "open", "surge", "[SURGE NEW]"),
+    (2, "growing", "surge", "[SURGE GROWING]"),
+    (3, "subsiding", "surge", "[SURGE SUBSIDING]"),
+    (4, "open", "surge", "[SURGE OPEN]"),  # re-activated after subsiding: not a new incident
+    (2, "open", "drop", "[DROP OPEN]"),
+    (5, "closed", "drop", "[DROP CLOSED]"),
+])
+def test_header_says_new_only_on_the_first_revision(revision: int, state: str, direction: str, tag: str) -> None:
+    upd = IncidentUpdate("inc-7", revision, H, state, direction, "/news", H, ("/news",), (), 2400)
+    rendered = render_update(upd, [_alert("/news")])
+    assert rendered.title.startswith(tag + " incident inc-7")
+    assert rendered.text.splitlines()[0] == rendered.title
+    assert ("NEW]" in rendered.text) == (revision == 1)
