@@ -10,7 +10,7 @@ import json
 import threading
 import time
 from collections.abc import Callable
-from typing import Any, cast
+from typing import Any
 
 from .config import Config, load_config
 from .constants import partition_name
@@ -21,7 +21,7 @@ from .incidents import IncidentUpdate
 from .messages import render_update
 from .records import Alert, Upstream
 from .sinks import Outgoing, build_sink
-from .store import Store, connect
+from .store import Entry, Store, connect, id_key
 
 __all__ = ["add_sink_commands", "sample_message"]
 
@@ -110,38 +110,38 @@ def cmd_sinks_test(args: argparse.Namespace) -> int:
     return 1 if failed else 0
 
 
-def _states(config: Config, store: Any, partition: int, entries: list[tuple[bytes, dict[bytes, bytes]]]
-            ) -> dict[bytes, dict[str, str]]:
+def _states(config: Config, store: Store, partition: int, entries: list[Entry]) -> dict[bytes, dict[str, str]]:
     """Per entry and sink: delivered, dead, pending, acked (joined/folded/held) or unread."""
     out: dict[bytes, dict[str, str]] = {eid: {} for eid, _ in entries}
     for target in config.sinks.targets:
         k = sink_keys(config, target.name, partition)
-        for eid, state in _sink_states(store, k, entries).items():
+        for eid, state in _sink_states(store, k, target.name, entries).items():
             out[eid][target.name] = state
     return out
 
 
-def _sink_states(store: Any, k: SinkKeys, entries: list[tuple[bytes, dict[bytes, bytes]]]) -> dict[bytes, str]:
-    """The delivery state of each entry for one sink (its Redis names in ``k``)."""
-    client = store.client
-    groups = {g["name"].decode(): g for g in store._do("XINFO GROUPS", lambda: client.xinfo_groups(k.outbox))}
-    group = groups.get(k.group)
-    pending = set()
-    if group is not None and group["pending"]:
-        got = store._do("XPENDING", lambda: client.xpending_range(k.outbox, k.group, "-", "+", 10000))
-        pending = {p["message_id"] for p in got}
-    dead = {f[b"key"] for _, f in store._do("XREVRANGE dead", lambda: client.xrevrange(k.dead, count=10000))}
-    last = group["last-delivered-id"] if group else b"0-0"
+def _sink_states(store: Store, k: SinkKeys, sink: str, entries: list[Entry]) -> dict[bytes, str]:
+    """The delivery state of each entry for one sink (its Redis names in ``k``).
+
+    An entry is ``delivered`` when its key is in the delivered-set, ``dead`` when the sink
+    gave up on it, ``pending`` when read but not acknowledged, ``acked`` when the sink
+    passed it (joined into an update, folded, held back by routing), else ``unread``.
+    Spill-over entries are delivered under their note's key, so they show as ``acked``.
+    """
+    group = next((g for g in store.groups(k.outbox) if g["name"].decode() == k.group), None)
+    pending = store.pending_ids(k.outbox, k.group) if group is not None and group["pending"] else set()
+    dead = {f[b"key"] for _, f in store.recent(k.dead, 10000) if f.get(b"sink") == sink.encode()}  # shared stream
+    last = id_key(group["last-delivered-id"]) if group else (0, 0)
     out: dict[bytes, str] = {}
     for eid, fields in entries:
         key = fields.get(b"key", b"")
-        if store._do("ZSCORE", lambda key=key: client.zscore(k.delivered, key)) is not None:
+        if store.is_delivered(k.delivered, key):
             state = "delivered"
         elif key in dead:
             state = "dead"
         elif eid in pending:
             state = "pending"
-        elif group is not None and _le(eid, last):
+        elif group is not None and id_key(eid) <= last:
             state = "acked"
         else:
             state = "unread"
@@ -149,29 +149,12 @@ def _sink_states(store: Any, k: SinkKeys, entries: list[tuple[bytes, dict[bytes,
     return out
 
 
-def _le(a: bytes, b: bytes) -> bool:
-    def key(x: bytes) -> tuple[int, int]:
-        ms, _, seq = x.decode().partition("-")
-        return int(ms), int(seq or 0)
-    return key(a) <= key(b)
-
-
-def _recent_entries(store: Store, stream: str, limit: int) -> list[tuple[bytes, dict[bytes, bytes]]]:
-    """The last ``limit`` (at least one) entries of ``stream``, oldest first.
-
-    The client runs with ``decode_responses`` off, so ids and fields are bytes; the redis
-    stubs type the reply for every client mode at once, hence the cast.
-    """
-    reply = store._do("XREVRANGE outbox", lambda: store.client.xrevrange(stream, count=max(1, limit)))
-    return list(reversed(cast(list[tuple[bytes, dict[bytes, bytes]]], reply)))
-
-
 def cmd_outbox(args: argparse.Namespace) -> int:
     config = load_config(args.config)
     store = connect(config.live, args.redis)
     try:
         stream = partition_name(config.live.names.outbox, args.partition)
-        entries = _recent_entries(store, stream, args.limit)
+        entries = list(reversed(store.recent(stream, max(1, args.limit))))  # oldest first
         states = _states(config, store, args.partition, entries)
     finally:
         store.close()
