@@ -9,6 +9,12 @@ are split into blocks of about equal edge counts and the blocks run in parallel;
 is shared between destinations except the per-source totals of the conservation cap,
 which each thread sums into its own row.
 
+The sources of a node's in-links are scattered over the whole node range, so reading their
+excess (first pass) and adding to their cap totals (second pass) are random accesses to
+arrays larger than a core's cache; both passes ask the memory system for the source of
+the edge :data:`PREFETCH` places ahead (a software prefetch, no effect on the results),
+which roughly halved the kernel's time at 22 million links on this project's machine.
+
 Arithmetic is float64 inside; stored arrays keep their dtype. ``numba`` is a dependency,
 but these are optional: :data:`alerter.flows.KERNEL` says whether they are in use, and
 ``ALERTER_FLOW_KERNEL=numpy`` forces the numpy path (CI runs both).
@@ -44,6 +50,45 @@ def _pjit(fn):  # noqa: ANN001, ANN202 - a decorator: parallel over the blocks
 
 _prange = numba.prange if numba is not None else range
 
+PREFETCH = 32
+"""How many edges ahead the kernels prefetch a source's row (tried 16, 32, 64: all alike)."""
+
+
+def _no_prefetch(arr, i):  # noqa: ANN001, ANN202 - plain Python: nothing to prefetch
+    return None
+
+
+if numba is not None:
+    from llvmlite import ir
+    from numba.core import cgutils
+    from numba.extending import intrinsic
+
+    @intrinsic
+    def _prefetch(typingctx, arr, i):  # noqa: ANN001, ANN202, ARG001 - numba intrinsic signature
+        """Hint the CPU to load row ``i`` of ``arr`` into cache (LLVM's ``llvm.prefetch``)."""
+        sig = numba.types.void(arr, i)
+
+        def codegen(context, builder, signature, args):  # noqa: ANN001, ANN202
+            aryty = signature.args[0]
+            ary = context.make_array(aryty)(context, builder, args[0])
+            i64 = ir.IntType(64)
+            row = args[1] if args[1].type.width == 64 else builder.sext(args[1], i64)
+            index = [row] + [ir.Constant(i64, 0)] * (aryty.ndim - 1)
+            ptr = cgutils.get_item_pointer2(context, builder, ary.data, cgutils.unpack_tuple(builder, ary.shape),
+                                            cgutils.unpack_tuple(builder, ary.strides), aryty.layout, index,
+                                            wraparound=False)
+            byte_ptr = ir.IntType(8).as_pointer()
+            i32 = ir.IntType(32)
+            fn = cgutils.get_or_insert_function(builder.module, ir.FunctionType(ir.VoidType(), [byte_ptr, i32, i32, i32]),
+                                                "llvm.prefetch.p0")
+            # read/write 1 (the totals are written), locality 3 (keep in all cache levels), data cache
+            builder.call(fn, [builder.bitcast(ptr, byte_ptr), ir.Constant(i32, 1), ir.Constant(i32, 3),
+                              ir.Constant(i32, 1)])
+            return context.get_dummy_value()
+        return sig, codegen
+else:  # pragma: no cover - depends on the environment
+    _prefetch = _no_prefetch
+
 
 def _thread_id() -> int:  # replaced by numba's inside compiled code
     return 0
@@ -74,10 +119,13 @@ def balanced_blocks(indptr: np.ndarray, per_thread: int = 4) -> np.ndarray:
 @_pjit
 def forecast_runs(blocks, indptr, src, beta, ehat, out):  # noqa: ANN001, ANN201
     """``out[i] = sum over i's in-edges of beta[e] * ehat[src[e]]``."""
+    n_edges = src.shape[0]
     for k in _prange(blocks.shape[0] - 1):
         for i in range(blocks[k], blocks[k + 1]):
             s = 0.0
             for e in range(indptr[i], indptr[i + 1]):
+                if e + PREFETCH < n_edges:
+                    _prefetch(ehat, src[e + PREFETCH])
                 s += np.float64(beta[e]) * np.float64(ehat[src[e]])
             out[i] = s
 
@@ -116,9 +164,11 @@ def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, 
     """
     last_r = rate_table.shape[0] - 1
     last_p = pull_table.shape[0] - 1
+    n_edges = src.shape[0]
     for k in _prange(blocks.shape[0] - 1):
         t = _tid()
         v_run = scratch[t]
+        tot = totals[t]
         for i in range(blocks[k], blocks[k + 1]):
             first, stop = indptr[i], indptr[i + 1]
             sg = np.float64(sign[i])
@@ -127,6 +177,8 @@ def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, 
             part = 0.0
             quad = 0.0
             for ed in range(first, stop):
+                if ed + PREFETCH < n_edges:
+                    _prefetch(eb, src[ed + PREFETCH])
                 j = src[ed]
                 z = np.float64(eb[j, 0]) + _novelty(ages, ed, a0, a1, inv_tau, age_table) * np.float64(eb[j, 1])
                 raw[ed] = np.float64(beta[ed]) * z
@@ -153,14 +205,18 @@ def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, 
                     bb = np.float64(beta[ed]) + gain * v_run[ed - first]
                     bb += np.float64(pull_table[min(hours[ed], last_p)]) * (prior - bb)
                     hours[ed] += 1
+                    if ed + PREFETCH < n_edges:
+                        _prefetch(tot, src[ed + PREFETCH])
                     beta[ed] = min(max(bb, lo), hi)
                     if beta[ed] > 0:
-                        totals[t, src[ed]] += np.float64(beta[ed])
+                        tot[src[ed]] += np.float64(beta[ed])
             else:
                 for ed in range(first, stop):
+                    if ed + PREFETCH < n_edges:
+                        _prefetch(tot, src[ed + PREFETCH])
                     beta[ed] = min(max(np.float64(beta[ed]), lo), hi)
                     if beta[ed] > 0:
-                        totals[t, src[ed]] += np.float64(beta[ed])
+                        tot[src[ed]] += np.float64(beta[ed])
 
 
 @_pjit
