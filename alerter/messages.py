@@ -21,9 +21,9 @@ from typing import Literal
 from .incidents import IncidentUpdate
 from .records import Alert, SpillWarning
 
-__all__ = ["RenderOptions", "Rendered", "escape", "truncate", "human_number", "percent_above", "state_word",
-           "render_update", "render_spill_note", "render_alert", "render_fold_summary", "render_digest_text",
-           "render_demo_messages", "ESTIMATE_LINE"]
+__all__ = ["RenderOptions", "Rendered", "escape", "truncate", "human_number", "percent_above", "visits",
+           "state_word", "render_update", "render_spill_note", "render_alert", "render_fold_summary",
+           "render_digest_text", "render_demo_messages", "ESTIMATE_LINE"]
 
 ESTIMATE_LINE = ("Note: the upstream sources and shares are estimates from learned link shares, "
                  "not proof of cause.")
@@ -110,6 +110,16 @@ def human_number(value: float) -> str:
     return f"{sign}{v:.0f}"
 
 
+def visits(value: float) -> str:
+    """A number of visits for people, singular when it rounds to one.
+
+    >>> [visits(v) for v in (0, 1.2, -1, 2, 1234)]
+    ['0 visits', '1 visit', '-1 visit', '2 visits', '1.2k visits']
+    """
+    shown = human_number(value)
+    return f"{shown} visit" if shown.lstrip("-") == "1" else f"{shown} visits"
+
+
 def percent_above(observed: float, expected: float) -> str:
     """Observed against expected as a signed percentage: +240%, -65%, or 'new' from zero.
 
@@ -144,10 +154,10 @@ def _alert_lines(alert: Alert, opts: RenderOptions) -> list[str]:
     lines = [head]
     for up in alert.upstream[: opts.top_upstream]:
         link = f", {up.link} link" if up.link else ""
-        lines.append(f"    via {_esc(up.node, opts)}: ~{human_number(up.visits)} visits "
+        lines.append(f"    via {_esc(up.node, opts)}: ~{visits(up.visits)} "
                      f"({up.share * 100:.0f}% of the excess{link})")
     if alert.unexplained is not None and alert.upstream:
-        lines.append(f"    unexplained: ~{human_number(abs(alert.unexplained))} visits")
+        lines.append(f"    unexplained: ~{visits(abs(alert.unexplained))}")
     return lines
 
 
@@ -172,7 +182,7 @@ def _context_line(update: IncidentUpdate) -> str:
     nodes = len(update.members)
     sign = "+" if update.total_excess >= 0 else ""
     base = (f"hour {_hour(update.hour)}; since {_hour(update.start)}; {nodes} node{'s' if nodes != 1 else ''}; "
-            f"excess {sign}{human_number(update.total_excess)} visits")
+            f"excess {sign}{visits(update.total_excess)}")
     if update.revision > 1:
         base += f"; update {update.revision} to the first message of this incident"
     return base
@@ -189,10 +199,14 @@ def _members_block(update: IncidentUpdate, alerts: Sequence[Alert], opts: Render
     if hidden:
         lines.append(f"- and {hidden} more alerting node{'s' if hidden != 1 else ''}")
     if quiet:
-        shown = ", ".join(_esc(m, opts) for m in quiet[:5])
-        more = f" and {len(quiet) - 5} more" if len(quiet) > 5 else ""
-        lines.append(f"- no new alert this hour: {shown}{more}")
+        lines.append(f"- no new alert this hour: {_listed(quiet, 5, opts)}")
     return lines
+
+
+def _listed(nodes: Sequence[str], limit: int, opts: RenderOptions) -> str:
+    """Up to ``limit`` escaped node ids, then how many more were left out."""
+    shown = ", ".join(_esc(m, opts) for m in nodes[:limit])
+    return shown + (f" and {len(nodes) - limit} more" if len(nodes) > limit else "")
 
 
 def _spill_lines(spills: Iterable[SpillWarning], incident: str, opts: RenderOptions) -> list[str]:
@@ -207,10 +221,10 @@ def render_update(update: IncidentUpdate, alerts: Sequence[Alert] = (), spills: 
     title = _title(update, opts)
     lines = [title, _context_line(update)]
     if update.new_members and update.revision > 1:
-        lines.append("new nodes: " + ", ".join(_esc(m, opts) for m in update.new_members[: opts.max_members]))
+        lines.append("new nodes: " + _listed(update.new_members, opts.max_members, opts))
     if update.state == "closed":
         lines.append("closed: no node beyond its band for the quiet period; last members: "
-                     + ", ".join(_esc(m, opts) for m in update.members[: opts.max_members]))
+                     + _listed(update.members, opts.max_members, opts))
     else:
         lines.extend(_members_block(update, alerts, opts))
     lines.extend(_spill_lines(spills, update.incident, opts))
@@ -253,7 +267,7 @@ def render_fold_summary(count: int, first_hour: str, last_hour: str, states: dic
              f"over the limit of {per_minute} message(s) per minute, hours {_hour(first_hour)} to "
              f"{_hour(last_hour)} ({parts})"]
     for node, excess in top:
-        lines.append(f"- {_esc(node, opts)}: excess {human_number(excess)} visits")
+        lines.append(f"- {_esc(node, opts)}: excess {visits(excess)}")
     lines.append("All held-back updates are in the outbox stream and the delivery log.")
     lines.append(ESTIMATE_LINE)
     return _fit("\n".join(lines), opts.max_message_chars)
@@ -267,7 +281,7 @@ def render_digest_text(since: str, until: str, incidents: int, states: dict[str,
              + (" (" + ", ".join(f"{n} {s}" for s, n in sorted(states.items())) + ")" if states else "")]
     if top:
         lines.append("top surging nodes:")
-        lines.extend(f"- {_esc(node, opts)}: excess {human_number(excess)} visits" for node, excess in top)
+        lines.extend(f"- {_esc(node, opts)}: excess {visits(excess)}" for node, excess in top)
     for why, n in sorted(suppressed.items()):
         lines.append(f"suppressed by {why}: {n}")
     lines.append(ESTIMATE_LINE)

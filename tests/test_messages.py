@@ -134,3 +134,21 @@ def test_header_says_new_only_on_the_first_revision(revision: int, state: str, d
     assert rendered.title.startswith(tag + " incident inc-7")
     assert rendered.text.splitlines()[0] == rendered.title
     assert ("NEW]" in rendered.text) == (revision == 1)
+
+
+def test_closed_and_new_node_lists_say_how_many_were_left_out() -> None:
+    members = tuple(f"/n{i:02d}" for i in range(11))
+    closed = IncidentUpdate("i", 4, H, "closed", "surge", members[0], H, members, (), 5000)
+    text = render_update(closed, (), (), RenderOptions(max_members=8)).text
+    assert "last members: /n00, /n01, /n02, /n03, /n04, /n05, /n06, /n07 and 3 more" in text
+    grown = IncidentUpdate("i", 2, H, "growing", "surge", members[0], H, members, members[1:], 5000)
+    assert "new nodes: /n01, /n02 and 8 more" in render_update(grown, (), (), RenderOptions(max_members=2)).text
+    assert "; 11 nodes; excess +5k visits" in text
+
+
+def test_visit_counts_read_as_singular_or_plural() -> None:
+    one = Alert.build(node="/x", hour=H, kind="surge", observed=201, expected=100, band_low=80, band_high=150,
+                      score=6, rule="default", streak=1, upstream=(Upstream("/home", 100, 0.99),), unexplained=1.0,
+                      origin="propagated")
+    lines = render_update(IncidentUpdate("i", 1, H, "open", "surge", "/x", H, ("/x",), ("/x",), 101), [one]).text
+    assert "unexplained: ~1 visit\n" in lines and "via /home: ~100 visits (99% of the excess)" in lines
