@@ -169,3 +169,18 @@ def test_daily_digest_posts_once_per_day_and_schedules(store: Store, hook: Hook,
         assert str(job.next_run_time.tzinfo) == cfg.clock.timezone
     finally:
         scheduler.shutdown(wait=False)
+
+
+def test_the_commented_sink_example_in_default_yaml_is_valid() -> None:
+    """The example targets in config/default.yaml's comment load as a real config (no stale keys)."""
+    import yaml
+
+    lines = (Path(__file__).resolve().parent.parent / "config" / "default.yaml").read_text().splitlines()
+    start = next(i for i, line in enumerate(lines) if line.strip().startswith("#   - name: chat"))
+    end = next(i for i in range(start, len(lines)) if lines[i].strip() == "targets: []")
+    example = "\n".join(line.split("#", 1)[1][1:] for line in lines[start:end])
+    targets = yaml.safe_load(example)
+    cfg = Config(sinks=SinkSettings(targets=targets))
+    assert [t.kind for t in cfg.sinks.targets] == ["webhook", "jsonl", "cloudevents", "redis_stream"]
+    chat = cfg.sinks.targets[0]
+    assert chat.updates is not None and chat.updates.id_field == "message.id" and chat.routes[0].name == "shop"
