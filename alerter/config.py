@@ -256,7 +256,8 @@ class SinkUpdates(_Strict):
     """Updates as edits of (or replies under) the incident's first message, for endpoints that
     answer a post with a message id. Without this block every update is a short follow-up."""
 
-    id_field: str = Field(min_length=1, pattern=r"^[A-Za-z0-9_-]+(\.[A-Za-z0-9_-]+)*$")  # dotted path in the JSON answer
+    # dotted path of the message id in the JSON answer to the first post, e.g. "message.id"
+    id_field: str = Field(min_length=1, pattern=r"^[A-Za-z0-9_-]+(\.[A-Za-z0-9_-]+)*$")
     url_template: str = Field("$url/$message_id", min_length=1)  # $url: the sink's URL; $message_id: that id
     method: Literal["POST", "PUT", "PATCH"] = "PATCH"
     body_template: str | None = None  # default: the sink's body_template; may use $message_id too

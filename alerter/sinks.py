@@ -292,12 +292,12 @@ class JsonlSink:
     def _rotate_if_due(self, incoming: int) -> None:
         if not self.path.exists():
             return
-        stat = self.path.stat()
+        stat, now = self.path.stat(), self.now().astimezone(UTC)  # days are UTC days, whatever the clock's zone
         started = datetime.fromtimestamp(stat.st_mtime, UTC).date()
         too_big = stat.st_size + incoming > self.rotate_bytes and stat.st_size > 0
-        new_day = self.rotate_daily and started != self.now().date()
+        new_day = self.rotate_daily and started != now.date()
         if too_big or new_day:
-            stamp = self.now().strftime("%Y%m%dT%H%M%S")
+            stamp = now.strftime("%Y%m%dT%H%M%S")
             n = 0
             while (target := self.path.with_name(f"{self.path.name}.{stamp}.{n}")).exists():
                 n += 1
@@ -351,7 +351,8 @@ def build_sink(target: SinkTarget, store: Any = None, now: Callable[[], datetime
         return WebhookSink(target.name, str(target.url_env), target.timeout_seconds, clock,
                            template=target.body_template, updates=target.updates)
     if target.kind == "cloudevents":
-        return CloudEventsSink(target.name, str(target.url_env), target.timeout_seconds, clock, source=target.source)
+        return CloudEventsSink(target.name, str(target.url_env), target.timeout_seconds, clock,
+                               source=target.source)
     if target.kind == "jsonl":
         return JsonlSink(target.name, Path(str(target.path)), target.rotate_bytes, target.rotate_daily, clock)
     if store is None:

@@ -306,3 +306,18 @@ def test_jsonl_daily_rotation_can_be_turned_off(tmp_path: Path, daily: bool, fil
     assert len(list(tmp_path.iterdir())) == files
     lines = [json.loads(x)["key"] for f in sorted(tmp_path.iterdir()) for x in f.read_text().splitlines()]
     assert sorted(lines) == ["k1", "k2"]
+
+
+def test_jsonl_days_are_utc_days_whatever_the_clocks_zone(tmp_path: Path) -> None:
+    from zoneinfo import ZoneInfo
+
+    from alerter.sinks import Outgoing
+
+    clock = Clock(datetime(2026, 11, 20, 10, 0, tzinfo=UTC))
+    JsonlSink("files", tmp_path / "a.jsonl", 1 << 20, True, clock).send(Outgoing("k1", "incident", H1, "t", "x"))
+    clock.at = datetime(2026, 11, 21, 0, 30, tzinfo=ZoneInfo("Europe/Berlin"))  # 23:30 UTC, still 20 November
+    JsonlSink("files", tmp_path / "a.jsonl", 1 << 20, True, clock).send(Outgoing("k2", "incident", H2, "t", "y"))
+    assert [f.name for f in tmp_path.iterdir()] == ["a.jsonl"]
+    clock.at = datetime(2026, 11, 21, 1, 30, tzinfo=ZoneInfo("Europe/Berlin"))  # 00:30 UTC on 21 November
+    JsonlSink("files", tmp_path / "a.jsonl", 1 << 20, True, clock).send(Outgoing("k3", "incident", H3, "t", "z"))
+    assert sorted(f.name for f in tmp_path.iterdir()) == ["a.jsonl", "a.jsonl.20261121T003000.0"]
