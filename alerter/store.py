@@ -226,11 +226,13 @@ class Store:
         return self._do(f"HGET {key}", lambda: self.client.hget(key, field_name))  # type: ignore[return-value]
 
     def hash_all(self, key: str) -> dict[bytes, bytes]:
-        return dict(self._do(f"HGETALL {key}", lambda: self.client.hgetall(key)))  # type: ignore[arg-type]
+        client: Any = self.client  # decode_responses off: bytes (the stubs type every client mode at once)
+        return dict(self._do(f"HGETALL {key}", lambda: client.hgetall(key)))
 
     def top_scores(self, key: str) -> list[tuple[bytes, float]]:
         """A sorted set, highest score first, with its scores."""
-        return list(self._do(f"ZREVRANGE {key}", lambda: self.client.zrevrange(key, 0, -1, withscores=True)))  # type: ignore[arg-type]
+        client: Any = self.client
+        return list(self._do(f"ZREVRANGE {key}", lambda: client.zrevrange(key, 0, -1, withscores=True)))
 
     def entries_before(self, stream: str, before: bytes | str, count: int) -> list[Entry]:
         """Up to ``count`` entries strictly before id ``before``, newest first (XREVRANGE)."""
@@ -266,8 +268,9 @@ class Store:
 
     def pending_ids(self, stream: str, group: str, count: int = 10000) -> set[bytes]:
         """The ids a consumer group has read but not acknowledged."""
-        got = self._do(f"XPENDING {stream}", lambda: self.client.xpending_range(stream, group, "-", "+", count))
-        return {p["message_id"] for p in got}  # type: ignore[union-attr]
+        client: Any = self.client
+        got = self._do(f"XPENDING {stream}", lambda: client.xpending_range(stream, group, "-", "+", count))
+        return {p["message_id"] for p in got}
 
 
 def with_retry(fn: Callable[[], T], initial: float, ceiling: float, what: str,
