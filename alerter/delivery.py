@@ -49,6 +49,7 @@ from .incidents import IncidentUpdate
 from .messages import RenderOptions, render_spill_note, render_update
 from .records import Alert, SpillWarning, Upstream
 from .sinks import Outgoing, Sent, Sink, build_sink
+from .store import id_key
 
 __all__ = ["TokenBucket", "backoff_seconds", "retry_wait", "severity_of", "in_quiet_hours", "pick_route",
            "SinkWorker", "run_delivery", "sink_keys", "alert_from_json", "options_of"]
@@ -202,6 +203,7 @@ class SinkWorker:
         self.opts = options_of(self.config, self.target)
         self.joined: OrderedDict[str, dict[str, bytes]] = OrderedDict()
         self.spills: OrderedDict[str, dict[str, bytes]] = OrderedDict()  # hour -> outbox key -> JSON
+        self.look_ahead: tuple[str, dict[str, bytes], list[tuple[bytes, bytes]]] | None = None  # see _ahead
         self.store.ensure_group(self.keys.outbox, self.keys.group)
 
     def count(self, what: str, n: int = 1) -> None:
@@ -276,13 +278,12 @@ class SinkWorker:
         self.spills.setdefault(hour, {})[fields[b"key"].decode()] = fields[b"spill"]
         while len(self.spills) > self.config.sinks.join_hours:
             self.spills.popitem(last=False)
-        later = self._rest_of_hour(eid, hour)
-        if any(f.get(b"type") == b"incident" and _update_from(f[b"incident"]).incident == spill.incident
-               for f in later):
+        updated, later = self._ahead(eid, hour)
+        if spill.incident in updated and id_key(updated[spill.incident]) > id_key(eid):
             self._ack(eid, "joined")
             return
         same = [_spill_from(v) for v in self.spills[hour].values()]
-        same += [_spill_from(f[b"spill"]) for f in later if f.get(b"type") == b"spill"]
+        same += [_spill_from(v) for i, v in later if id_key(i) > id_key(eid)]
         mine = sorted({(w.node, w.hour): w for w in same if w.incident == spill.incident}.values(),
                       key=lambda w: (w.node, w.hour))
         title, text = render_spill_note(spill.incident, hour, mine, self.opts)
@@ -290,16 +291,30 @@ class SinkWorker:
                        spill.via, {"incident": spill.incident, "spills": [w.to_dict() for w in mine]})
         self.deliver(eid, msg)
 
-    def _rest_of_hour(self, eid: bytes, hour: str) -> list[dict[bytes, bytes]]:
+    def _ahead(self, eid: bytes, hour: str) -> tuple[dict[str, bytes], list[tuple[bytes, bytes]]]:
+        """The rest of the hour after ``eid``, read once per hour (not once per spill entry):
+        incident id -> entry id of its last update there, and the (entry id, JSON) of the spills."""
+        if self.look_ahead is None or self.look_ahead[0] != hour:
+            updated: dict[str, bytes] = {}
+            spills: list[tuple[bytes, bytes]] = []
+            for next_id, f in self._rest_of_hour(eid, hour):
+                if f.get(b"type") == b"incident":
+                    updated[_update_from(f[b"incident"]).incident] = next_id
+                elif f.get(b"type") == b"spill":
+                    spills.append((next_id, f[b"spill"]))
+            self.look_ahead = (hour, updated, spills)
+        return self.look_ahead[1], self.look_ahead[2]
+
+    def _rest_of_hour(self, eid: bytes, hour: str) -> list[tuple[bytes, dict[bytes, bytes]]]:
         """The outbox entries after ``eid`` that belong to the same hour (read ahead)."""
-        out: list[dict[bytes, bytes]] = []
+        out: list[tuple[bytes, dict[bytes, bytes]]] = []
         after: bytes = eid
         while True:
             got = self.store.entries_after(self.keys.outbox, after, self.config.sinks.read_count)
             for next_id, fields in got:
                 if fields.get(b"hour", b"").decode() != hour:
                     return out
-                out.append(fields)
+                out.append((next_id, fields))
                 after = next_id
             if len(got) < self.config.sinks.read_count:
                 return out

@@ -321,3 +321,29 @@ def test_jsonl_days_are_utc_days_whatever_the_clocks_zone(tmp_path: Path) -> Non
     clock.at = datetime(2026, 11, 21, 1, 30, tzinfo=ZoneInfo("Europe/Berlin"))  # 00:30 UTC on 21 November
     JsonlSink("files", tmp_path / "a.jsonl", 1 << 20, True, clock).send(Outgoing("k3", "incident", H3, "t", "z"))
     assert sorted(f.name for f in tmp_path.iterdir()) == ["a.jsonl", "a.jsonl.20261121T003000.0"]
+
+
+class CountingStore(Store):
+    """The real Store over the same real Redis, counting its read-ahead calls."""
+
+    ahead_reads: int = 0
+
+    def entries_after(self, stream: str, after: bytes | str, count: int) -> list:  # type: ignore[override]
+        self.ahead_reads += 1
+        return super().entries_after(stream, after, count)
+
+
+def test_an_hour_of_many_spills_is_read_ahead_once(store: Store, hook: Hook,  # noqa: F811
+                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("TEST_HOOK_URL", hook.url)
+    spills = [_spill(f"/j{i:02d}") for i in range(10)] + [_spill(f"/k{i:02d}", "inc-2", "/z") for i in range(10)]
+    push_hour(store, [alert("/a", H3)], [update("inc-1", 2, H3, ("/a",), "growing")], spills=spills, hour=H3)
+    counting = CountingStore(store.client, store.where)
+    counters = _worker(_config(), counting).run(drained=True)
+    assert counting.ahead_reads == 1  # not once per spill entry
+    note, update_post = hook.posts  # the note goes out at its spill entry, before the hour's updates
+    assert update_post["headers"]["idempotency-key"] == "incident|inc-1|2"
+    assert all(f"spill-over: /j{i:02d} " in update_post["body"]["text"] for i in range(10))
+    assert note["headers"]["idempotency-key"] == f"spill|inc-2|{H3}"
+    assert "10 downstream nodes" in note["body"]["text"] and "/j0" not in note["body"]["text"]
+    assert counters["already_delivered"] == 9 and counters["joined"] == 11
