@@ -12,9 +12,6 @@ body carries the new resource's id) follow RFC 9110 sections 9.3.4 and 15.3 and 
 from __future__ import annotations
 
 import json
-import os
-import signal
-import threading
 from collections.abc import Callable
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -29,7 +26,18 @@ from alerter.sinks import JsonlSink, build_sink
 from alerter.store import Store
 
 from .conftest_redis import redis_url, store  # noqa: F401 - fixtures
-from .test_sinks_http import H1, H2, OUT, Hook, _cli, alert, hook, push_hour, update  # noqa: F401 - fixtures
+from .test_sinks_http import (
+    H1,
+    H2,
+    OUT,
+    Hook,
+    alert,
+    hook,  # noqa: F401 - fixture
+    kill_after_first_post,
+    push_hour,
+    run_to_end,
+    update,
+)
 
 H3, H4 = "2026-11-20T12:00:00Z", "2026-11-20T13:00:00Z"
 EDITS = SinkUpdates(id_field="message.id", url_template="$url/messages/$message_id", method="PATCH")
@@ -211,23 +219,11 @@ def test_uncertain_resend_posts_again_with_the_same_key(store: Store, hook: Hook
     cfg_path.write_text("sinks:\n  targets:\n"
                         "    - {name: chat, kind: webhook, url_env: TEST_HOOK_URL, uncertain: resend}\n")
     push_hour(store, [alert("/a", H1)], [update("inc-1", 1, H1, ("/a",)), update("inc-2", 1, H1, ("/b",))])
-    hook.hold = threading.Event()  # the answer is held back: the client never sees its 2xx
-    proc = _cli(cfg_path, redis_url, hook.url)
-    try:
-        assert hook.received.wait(30), "the sink process never posted"
-        os.kill(proc.pid, signal.SIGKILL)
-        proc.wait(10)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-    hook.hold.set()
-    hook.hold = None
+    kill_after_first_post(cfg_path, redis_url, hook)
     inflight = sink_keys(Config(), "chat").inflight
     assert store.client.hexists(inflight, "incident|inc-1|1")  # the crash left the key in flight
 
-    again = _cli(cfg_path, redis_url, hook.url)
-    out, err = again.communicate(timeout=60)
-    assert again.returncode == 0, err.decode()[-3000:]
+    out = run_to_end(cfg_path, redis_url, hook)
     keys = [p["headers"]["idempotency-key"] for p in hook.posts]
     assert keys == ["incident|inc-1|1", "incident|inc-1|1", "incident|inc-2|1"]  # re-posted under the same key
     assert hook.posts[0]["body"] == hook.posts[1]["body"]

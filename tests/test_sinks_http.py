@@ -189,12 +189,10 @@ def _cli(cfg_path: Path, redis_url: str, hook_url: str) -> subprocess.Popen[byte
                             cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
 
 
-def test_sigkill_after_the_server_received_the_post_never_doubles(store: Store, hook: Hook,  # noqa: F811
-                                                                  redis_url: str, tmp_path: Path) -> None:  # noqa: F811
-    cfg_path = tmp_path / "sinks.yaml"
-    cfg_path.write_text("sinks:\n  targets:\n    - {name: chat, kind: webhook, url_env: TEST_HOOK_URL}\n")
-    push_hour(store, [alert("/a", H1)], [update("inc-1", 1, H1, ("/a",)), update("inc-2", 1, H1, ("/b",))])
-    hook.hold = threading.Event()  # the server keeps the answer back: the client cannot have seen a 2xx
+def kill_after_first_post(cfg_path: Path, redis_url: str, hook: Hook) -> None:  # noqa: F811
+    """Start ``sinks run`` and SIGKILL it once the server has its first post, before it answers
+    (the server holds the answer back, so the client cannot have seen a 2xx)."""
+    hook.hold = threading.Event()
     proc = _cli(cfg_path, redis_url, hook.url)
     try:
         assert hook.received.wait(30), proc.stderr.read().decode() if proc.poll() is not None else "no post"
@@ -205,17 +203,31 @@ def test_sigkill_after_the_server_received_the_post_never_doubles(store: Store, 
             proc.kill()
     hook.hold.set()
     hook.hold = None
+
+
+def run_to_end(cfg_path: Path, redis_url: str, hook: Hook) -> str:  # noqa: F811
+    """Run ``sinks run --until-drained`` again (the restart); its JSON counters, stack dump on a hang."""
+    again = _cli(cfg_path, redis_url, hook.url)
+    try:
+        out, err = again.communicate(timeout=60)
+    except subprocess.TimeoutExpired:
+        again.send_signal(signal.SIGABRT)  # PYTHONFAULTHANDLER prints every thread's stack
+        out, err = again.communicate(timeout=10)
+        raise AssertionError(err.decode()[-3000:]) from None
+    assert again.returncode == 0, err.decode()[-3000:]
+    return out.decode()
+
+
+def test_sigkill_after_the_server_received_the_post_never_doubles(store: Store, hook: Hook,  # noqa: F811
+                                                                  redis_url: str, tmp_path: Path) -> None:  # noqa: F811
+    cfg_path = tmp_path / "sinks.yaml"
+    cfg_path.write_text("sinks:\n  targets:\n    - {name: chat, kind: webhook, url_env: TEST_HOOK_URL}\n")
+    push_hour(store, [alert("/a", H1)], [update("inc-1", 1, H1, ("/a",)), update("inc-2", 1, H1, ("/b",))])
+    kill_after_first_post(cfg_path, redis_url, hook)
     assert len(hook.posts) == 1
     assert store.pending_count(OUT, "alerter-sink-chat") >= 1  # killed before XACK
 
-    again = _cli(cfg_path, redis_url, hook.url)
-    try:
-        out, err = again.communicate(timeout=30)
-    except subprocess.TimeoutExpired:
-        again.send_signal(signal.SIGABRT)
-        out, err = again.communicate(timeout=10)
-        raise AssertionError(err.decode()[-3000:]) from None
-    assert again.returncode == 0, err.decode()
+    out = run_to_end(cfg_path, redis_url, hook)
     keys = [p["headers"]["idempotency-key"] for p in hook.posts]
     assert keys == ["incident|inc-1|1", "incident|inc-2|1"]  # inc-1 not posted again, inc-2 once
     counters = json.loads(out)["chat/p0"]
