@@ -10,7 +10,9 @@ Per outbox entry and sink (all decisions in pure helpers, Redis calls in ``_Keys
    the sink dead-letter stream (never posted twice), ``resend`` posts it again with the
    same Idempotency-Key for endpoints that honour it.
 3. Routing (first route whose globs match the root), minimum severity and quiet hours;
-   what they hold back is counted for the digest and acknowledged.
+   what they hold back is counted for the digest and acknowledged. Spill-over warnings
+   join their incident's update of the hour, else go out as one note per incident and
+   hour, routed like the incident.
 4. Rate limit (token bucket per sink): over the limit, the entry is folded into a Redis
    hash and acknowledged in the same MULTI/EXEC; the fold goes out as one summary message
    as soon as a token is free. Nothing is dropped, memory stays bounded.
@@ -61,6 +63,8 @@ MESSAGE_IDS_KEY = "alerter:{p#}:msgids:%"
 # Outbox entry types that are figures, not messages: acknowledged, counted by the digest.
 FIGURE_TYPES = ("suppressed",)
 SEVERITY_RANK = {"low": 0, "medium": 1, "high": 2}
+# Incident roots remembered to route spill-over notes like their incident (a bound on memory).
+ROOTS_KEPT = 10000
 
 
 # --- pure arithmetic -------------------------------------------------------------------------
@@ -202,6 +206,7 @@ class SinkWorker:
         self.bucket = TokenBucket(self.target.messages_per_minute)
         self.opts = options_of(self.config, self.target)
         self.joined: OrderedDict[str, dict[str, bytes]] = OrderedDict()
+        self.roots: OrderedDict[str, str] = OrderedDict()  # incident -> root of its last update (routes spills)
         self.spills: OrderedDict[str, dict[str, bytes]] = OrderedDict()  # hour -> outbox key -> JSON
         self.look_ahead: tuple[str, dict[str, bytes], list[tuple[bytes, bytes]]] | None = None  # see _ahead
         self.store.ensure_group(self.keys.outbox, self.keys.group)
@@ -246,8 +251,11 @@ class SinkWorker:
             self._ack(eid, "ignored")
             return
         update = _update_from(fields[b"incident"])
+        self.roots[update.incident] = update.root
+        while len(self.roots) > ROOTS_KEPT:
+            self.roots.popitem(last=False)
         route = pick_route(self.target.routes, update.root)
-        held = self._held_back(update, route)
+        held = self._held_back(route, update.total_excess, update.state == "closed")
         if held:
             self._stat(held)
             self._ack(eid, held)
@@ -286,10 +294,31 @@ class SinkWorker:
         same += [_spill_from(v) for i, v in later if id_key(i) > id_key(eid)]
         mine = sorted({(w.node, w.hour): w for w in same if w.incident == spill.incident}.values(),
                       key=lambda w: (w.node, w.hour))
+        route = self._spill_route(eid, hour, fields[b"key"].decode(), spill, mine)
+        if route is None:
+            return
         title, text = render_spill_note(spill.incident, hour, mine, self.opts)
         msg = Outgoing(f"spill|{spill.incident}|{hour}", "spill", hour, title, text, spill.incident, 0, "spill",
-                       spill.via, {"incident": spill.incident, "spills": [w.to_dict() for w in mine]})
+                       spill.via, {"incident": spill.incident, "spills": [w.to_dict() for w in mine]},
+                       route.url_env if route else None)
         self.deliver(eid, msg)
+
+    def _spill_route(self, eid: bytes, hour: str, key: str, spill: SpillWarning, mine: list[SpillWarning]
+                     ) -> SinkRoute | None:
+        """The route of a spill-over note, or None when routing holds it back (then acknowledged).
+
+        Routed like the incident: by its root when an update of it was seen, else by the member
+        it spills from; severity from the visits over capacity (the unit of an update's excess).
+        A held note is counted once: the incident's earlier entries of the hour were held already.
+        """
+        route = pick_route(self.target.routes, self.roots.get(spill.incident, spill.via))
+        held = self._held_back(route, sum(w.forecast - w.capacity for w in mine))
+        if not held:
+            return route
+        if not any(_spill_from(v).incident == spill.incident for k, v in self.spills[hour].items() if k != key):
+            self._stat(held)
+        self._ack(eid, held)
+        return None
 
     def _ahead(self, eid: bytes, hour: str) -> tuple[dict[str, bytes], list[tuple[bytes, bytes]]]:
         """The rest of the hour after ``eid``, read once per hour (not once per spill entry):
@@ -319,13 +348,14 @@ class SinkWorker:
             if len(got) < self.config.sinks.read_count:
                 return out
 
-    def _held_back(self, update: IncidentUpdate, route: SinkRoute | None) -> str | None:
-        """Why routing holds this update back (None = send it)."""
+    def _held_back(self, route: SinkRoute | None, excess: float, closing: bool = False) -> str | None:
+        """Why routing holds a message of this excess back (None = send it); a closing
+        message passes the minimum severity (its incident's first message did)."""
         if route is None:
             return "no_route"
         sev = self.config.sinks.severity
-        rank = SEVERITY_RANK[severity_of(update.total_excess, sev.medium_excess, sev.high_excess)]
-        if update.state != "closed" and rank < SEVERITY_RANK[route.min_severity]:
+        rank = SEVERITY_RANK[severity_of(excess, sev.medium_excess, sev.high_excess)]
+        if not closing and rank < SEVERITY_RANK[route.min_severity]:
             return "below_severity"
         if route.quiet is not None:
             local = datetime.fromtimestamp(self.clock(), ZoneInfo(self.config.clock.timezone))

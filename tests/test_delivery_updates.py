@@ -343,3 +343,29 @@ def test_an_hour_of_many_spills_is_read_ahead_once(store: Store, hook: Hook,  # 
     assert note["headers"]["idempotency-key"] == f"spill|inc-2|{H3}"
     assert "10 downstream nodes" in note["body"]["text"] and "/j0" not in note["body"]["text"]
     assert counters["already_delivered"] == 9 and counters["joined"] == 11
+
+
+def test_spill_notes_are_routed_like_their_incident(store: Store, hook: Hook,  # noqa: F811
+                                                    monkeypatch: pytest.MonkeyPatch) -> None:
+    from alerter.config import SinkRoute
+
+    monkeypatch.setenv("TEST_HOOK_URL", hook.url)
+    monkeypatch.setenv("TEST_SHOP_URL", hook.url.replace("/hook/", "/shop/"))
+    routes = [SinkRoute(name="shop", match=["/shop/*"], url_env="TEST_SHOP_URL"),
+              SinkRoute(name="news", match=["/news/*"], min_severity="high")]
+    cfg = _config(routes=routes)
+    push_hour(store, [], [update("inc-s", 1, H2, ("/shop/a",))])
+    push_hour(store, [], [], spills=[_spill("/pay", "inc-s", "/x"),  # via an unrouted member, but its root is a shop page
+                                     _spill("/n1", "inc-n", "/news/x"), _spill("/n2", "inc-n", "/news/x"),  # low
+                                     _spill("/m1", "inc-m", "/misc")], hour=H3)  # no route
+    clock = lambda: datetime(2026, 11, 20, 12, 30, tzinfo=UTC).timestamp()  # noqa: E731
+    counters = _worker(cfg, store, clock=clock).run(drained=True)
+    assert [(p["path"], p["headers"]["idempotency-key"]) for p in hook.posts] == [
+        ("/shop/SECRET-TOKEN", "incident|inc-s|1"), ("/shop/SECRET-TOKEN", f"spill|inc-s|{H3}")]
+    assert counters["below_severity"] == 2 and counters["no_route"] == 1
+    stats = store.hash_all(sink_keys(cfg, "chat").stats.replace("@", "20261120"))
+    assert stats == {b"below_severity": b"1", b"no_route": b"1"}  # one held note each, not one per entry
+
+    push_hour(store, [], [], spills=[_spill("/cart", "inc-t", "/shop/b")], hour=H4)
+    _worker(cfg, store, clock=clock).run(drained=True)  # a restart knows no roots: routed by the member
+    assert hook.posts[-1]["path"] == "/shop/SECRET-TOKEN" and "/cart" in hook.posts[-1]["body"]["text"]
