@@ -449,12 +449,19 @@ class SinkWorker:
     def _keep_message_id(self, msg: Outgoing, sent: Sent, extra: Callable[[Any], None] | None
                          ) -> Callable[[Any], None] | None:
         """With ``updates`` set: the first post's message id joins the delivered-set transaction,
-        so it survives a restart (a crash before it loses only the edit: later updates follow up)."""
-        if self.target.updates is None or not sent.message_id or msg.edit_of or msg.entry_type != "incident":
+        so it survives a restart (a crash before it loses only the edit: later updates follow up);
+        the closing message drops it again, so the hash holds open incidents only."""
+        if self.target.updates is None or msg.entry_type != "incident":
+            return extra
+        keep = sent.message_id if not msg.edit_of and msg.state != "closed" else None
+        if keep is None and msg.state != "closed":
             return extra
 
         def build(pipe: Any) -> None:
-            pipe.hsetnx(self.keys.message_ids, msg.thread, sent.message_id)
+            if keep is not None:
+                pipe.hsetnx(self.keys.message_ids, msg.thread, keep)
+            else:
+                pipe.hdel(self.keys.message_ids, msg.thread)
             if extra is not None:
                 extra(pipe)
         return build

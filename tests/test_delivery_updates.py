@@ -92,6 +92,7 @@ def test_updates_edit_the_first_message_with_their_own_key_and_survive_a_restart
     assert _sent(hook)[-2:] == [("PATCH", base + "/messages/m%2F1%20x", "incident|inc-1|3"),
                                 ("PATCH", base + "/messages/m%2F2%20x", "incident|inc-2|2")]
     assert again["delivered"] == 2 and "CLOSED" in hook.posts[-1]["body"]["text"]
+    assert store.hash_all(ids) == {}  # closing messages drop the kept ids: the hash holds open incidents only
 
 
 def test_updates_body_template_may_name_the_message_id(store: Store, hook: Hook,  # noqa: F811
