@@ -7,6 +7,15 @@ acknowledged. On start it restores the checkpoint, re-reads its own pending entr
 claims those a dead consumer left idle, and skips every entry at or below the
 checkpoint's applied id. The engine stays pure; time comes from an injected clock and
 the hourly wake-up from an APScheduler job that only calls ``next_close``.
+
+Entries are applied strictly in stream order, because an edge event takes effect for the
+counts that follow it and the skip rule above rests on a rising applied id. So when
+another consumer of the group holds entries newer than the applied id (it read them and
+died, or is a worker restarted under another name), the service holds back what it reads
+after them, stops closing hours by the clock, and claims them with XAUTOCLAIM as soon as
+they have been idle ``live.claim_idle_seconds``; then it goes on in order. Besides, every
+``live.claim_idle_seconds`` while running it claims whatever another consumer left idle,
+so entries a consumer read last before dying are not stranded either.
 """
 
 from __future__ import annotations
@@ -30,7 +39,7 @@ from .engine import Engine
 from .errors import BadEntryError
 from .incidents import IncidentUpdate
 from .records import Alert, dumps
-from .store import Entry, FieldsIn, Store, id_key, with_retry
+from .store import Entry, FieldsIn, Pending, Store, id_key, with_retry
 from .sync import ExchangeAbandoned, HourExchange
 from .timeaxis import format_hour
 from .wire import CountBatch, EdgeChange, decode_entry, fields_text
@@ -98,7 +107,9 @@ class Service:
         self._to_ack: list[bytes] = []
         self._appends: list[tuple[str, FieldsIn]] = []
         self._dirty = False
-        self._last_claim = time.monotonic()
+        self._held: dict[bytes, dict[bytes, bytes]] = {}  # read, waiting behind another consumer's entries
+        self._gap: list[Pending] = []  # another consumer's pending entries above the applied id
+        self._claim_at = time.monotonic() + config.live.claim_idle_seconds
         self.exchange = None if config.live.partitions == 1 else HourExchange(
             config, store, partition, self._retry, self._stop.is_set)
 
@@ -166,14 +177,13 @@ class Service:
         if isinstance(blob, bytes):
             self.state = load(blob)
         self._retry("XGROUP CREATE", lambda: self.store.ensure_group(n.input, n.group))
-        entries = self._own_pending() + self._claimed()
-        unique = {eid: fields for eid, fields in entries}
-        ordered = sorted(unique.items(), key=lambda e: id_key(e[0]))
-        self._ingest(ordered)
+        own = self._own_pending()
+        self._take(own)
+        self._claim()
         applied = self.state.applied_id.decode() if self.state.applied_id else "-"
-        log.info("service recovered partition=%d epoch=%d applied=%s pending=%d open_hours=%d took_ms=%.0f",
-                 self.partition, self.state.epoch, applied, len(ordered), len(self.state.buckets.open),
-                 (time.perf_counter() - t0) * 1000)
+        log.info("service recovered partition=%d epoch=%d applied=%s pending=%d held=%d open_hours=%d "
+                 "took_ms=%.0f", self.partition, self.state.epoch, applied, len(own), len(self._held),
+                 len(self.state.buckets.open), (time.perf_counter() - t0) * 1000)
         self._close_due(backlog=True)
 
     def _own_pending(self) -> list[Entry]:
@@ -186,15 +196,50 @@ class Service:
             out.extend(got)
             start = got[-1][0].decode()
 
-    def _claimed(self) -> list[Entry]:
+    # -- other consumers' entries -------------------------------------------------------
+    def _foreign(self) -> list[Pending]:
+        n = self.names
+        got = self._retry("XPENDING", lambda: self.store.foreign_pending(n.input, n.group, self.consumer))
+        return got if isinstance(got, list) else []
+
+    def _claim(self) -> None:
+        """XAUTOCLAIM what other consumers left idle (only when they hold anything, so our
+        own pending entries are not fetched again for nothing), then apply what is in order."""
         n, idle = self.names, int(self.live.claim_idle_seconds * 1000)
-        got = self._retry("XAUTOCLAIM", lambda: self.store.claim_idle(n.input, n.group, self.consumer, idle,
-                                                                      self.live.read_count))
-        entries = got if isinstance(got, list) else []
-        if entries:
-            log.info("service claimed partition=%d entries=%d idle_s=%.0f", self.partition, len(entries),
-                     self.live.claim_idle_seconds)
-        return entries
+        claimed: list[Entry] = []
+        if self._foreign():
+            got = self._retry("XAUTOCLAIM", lambda: self.store.claim_idle(n.input, n.group, self.consumer, idle,
+                                                                          self.live.read_count))
+            mine = set(self._to_ack) | self._held.keys()  # our own idle entries come back too
+            claimed = [(eid, f) for eid, f in (got if isinstance(got, list) else []) if eid not in mine]
+        if claimed:
+            self.state.count("claimed", len(claimed))
+            log.info("service claimed partition=%d entries=%d idle_s=%g phase=%s", self.partition, len(claimed),
+                     self.live.claim_idle_seconds, self.phase.value)
+        self._claim_at = time.monotonic() + self.live.claim_idle_seconds
+        self._take(claimed)
+
+    def _take(self, entries: list[Entry]) -> None:
+        """Apply entries in stream order up to the first one another consumer still holds;
+        keep the rest back until that one is claimed."""
+        self._held.update(entries)
+        applied = self.state.applied_id
+        waiting = bool(self._gap)
+        self._gap = [p for p in self._foreign() if applied is None or id_key(p.id) > id_key(applied)]
+        limit = id_key(self._gap[0].id) if self._gap else None
+        ready = sorted((eid for eid in self._held if limit is None or id_key(eid) < limit), key=id_key)
+        for eid in ready:  # close as soon as an hour is due: few open hours per checkpoint
+            self._ingest([(eid, self._held.pop(eid))])
+            self._close_due(backlog=True)
+        if not self._gap:
+            return
+        oldest = max(p.idle_ms for p in self._gap) / 1000  # claim as soon as the oldest may be claimed
+        self._claim_at = min(self._claim_at, time.monotonic() + max(0.0, self.live.claim_idle_seconds - oldest))
+        if not waiting:
+            first = self._gap[0]
+            log.warning("service waiting partition=%d for entries held by consumer=%s first=%s count=%d held=%d; "
+                        "claimed once idle %g s (live.claim_idle_seconds)", self.partition, first.consumer,
+                        first.id.decode(), len(self._gap), len(self._held), self.live.claim_idle_seconds)
 
     def _read(self, start: str, block: int | None) -> list[Entry]:
         n = self.names
@@ -205,13 +250,19 @@ class Service:
     # -- the loop ------------------------------------------------------------------------
     def _step_loop(self) -> bool:
         """One read and what follows; False when the drained stream is finished."""
+        if time.monotonic() >= self._claim_at:
+            self._claim()
+        if self._gap:  # another consumer holds older entries: read no further until they are claimed
+            self._stop.wait(min(self.live.block_ms / 1000, max(0.0, self._claim_at - time.monotonic())))
+            return True
         entries = self._read(">", block=None if self.drained else self.live.block_ms)
         if entries:
-            for entry in entries:  # close as soon as an hour is due: few open hours per checkpoint
-                self._ingest([entry])
-                self._close_due(backlog=True)
+            self._take(entries)
             return True
         if self.drained:
+            self._take([])  # the stream's last entries may be another consumer's: wait for them
+            if self._gap:
+                return True
             self._set_phase(Phase.DRAINING)
             for closed in self.state.buckets.close_all():
                 self._close(closed)
@@ -272,10 +323,13 @@ class Service:
 
     def _close_due(self, backlog: bool = False) -> None:
         """Close what is due: by watermark when draining, else on the scheduler's wake-up (or
-        right after reading entries, so a backlog of hours already past closes at once)."""
+        right after reading entries, so a backlog of hours already past closes at once). Not
+        by the clock while another consumer holds older entries: their counts would be late."""
         buckets = self.state.buckets
         if self.drained:
             ready = buckets.close_ready(lambda h: watermark_due(h, buckets.watermark))
+        elif self._gap:
+            return
         elif self._tick.is_set() or backlog:
             self._tick.clear()
             now, grace = self.clock(), timedelta(seconds=self.live.grace_seconds)

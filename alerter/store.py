@@ -26,7 +26,7 @@ from .config import LiveSettings
 from .errors import StoreError, StoreUnavailableError
 from .redis_server import EmbeddedServer
 
-__all__ = ["Store", "Entry", "redact", "connect", "id_key", "with_retry"]
+__all__ = ["Store", "Entry", "Pending", "redact", "connect", "id_key", "with_retry"]
 
 log = logging.getLogger(__name__)
 Entry = tuple[bytes, dict[bytes, bytes]]
@@ -54,6 +54,15 @@ def id_key(entry_id: bytes | str) -> tuple[int, int]:
     text = entry_id.decode() if isinstance(entry_id, bytes) else entry_id
     ms, _, seq = text.partition("-")
     return int(ms), int(seq or 0)
+
+
+@dataclass(frozen=True)
+class Pending:
+    """One entry a consumer has read and not acknowledged: its id, the consumer, idle ms."""
+
+    id: bytes
+    consumer: str
+    idle_ms: int
 
 
 @contextmanager
@@ -140,6 +149,24 @@ class Store:
                     return out
                 start = nxt
         return self._do(f"XAUTOCLAIM {stream}", run)
+
+    def foreign_pending(self, stream: str, group: str, consumer: str) -> list[Pending]:
+        """The entries other consumers of the group have read and not acknowledged, oldest
+        first: XPENDING's summary names the consumers, then one ranged XPENDING each."""
+        def run() -> list[Pending]:
+            try:
+                summary: Any = self.client.xpending(stream, group)
+            except redis.ResponseError:  # no stream or no group yet: nothing pending
+                return []
+            out: list[Pending] = []
+            for c in summary.get("consumers") or []:
+                name = c["name"].decode() if isinstance(c["name"], bytes) else str(c["name"])
+                if name == consumer or not int(c["pending"]):
+                    continue
+                got: Any = self.client.xpending_range(stream, group, "-", "+", int(c["pending"]), name)
+                out.extend(Pending(p["message_id"], name, int(p["time_since_delivered"])) for p in got)
+            return sorted(out, key=lambda p: id_key(p.id))
+        return self._do(f"XPENDING {stream}", run)
 
     def ack(self, stream: str, group: str, ids: Sequence[bytes]) -> int:
         if not ids:

@@ -290,3 +290,52 @@ def test_two_workers_on_the_demo_week_give_the_records_of_one(tmp_path: Path, st
     assert _outbox(store, 0, b"incident", b"incident") == [dumps(u) for u in one.incidents]
     assert _outbox(store, 0, b"spill", b"spill") == [dumps(w) for w in one.spills]
     assert not _outbox(store, 1, b"incident", b"incident") and not _outbox(store, 1, b"spill", b"spill")
+
+
+def test_running_service_claims_what_a_dead_consumer_left(tmp_path: Path, store: Store,  # noqa: F811
+                                                         caplog: pytest.LogCaptureFixture) -> None:
+    """While a service runs, a second consumer of the group reads 20 entries in the middle of
+    the stream and dies without acknowledging them. The running service reads on past them,
+    holds what it read (stream order: edges and the applied-id skip rule depend on it),
+    claims them once they are idle ``live.claim_idle_seconds`` and ends with the replay's
+    alerts: none lost, none doubled, nothing left pending."""
+    config = Config()
+    config = config.model_copy(update={"live": config.live.model_copy(update={"claim_idle_seconds": 1.0})})
+    rec = small_recording(tmp_path)
+    push_recording(rec, store, config.live)
+    fields = [f for _, f in store.entries(IN)]
+    store.client.delete(IN)
+    first = len(fields) // 2
+    store.append(IN, fields[:first])
+    now = START + timedelta(hours=300)  # every hour is due as soon as its counts are in
+    svc = Service(config, store, clock=lambda: now)
+    thread = threading.Thread(target=svc.run, kwargs={"install_signals": False}, daemon=True)
+    with caplog.at_level(logging.INFO, logger="alerter.service"):
+        thread.start()
+        try:
+            deadline = time.monotonic() + 60
+            while svc.state.applied_id != store.entries(IN)[-1][0] and time.monotonic() < deadline:
+                time.sleep(0.02)
+            assert svc.phase.value == "running" and store.pending_count(IN, "alerter-service") == 0
+            # one transaction: the dead consumer reads the next 20 entries before the running
+            # service (blocked in XREADGROUP) is served the rest
+            pipe = store.client.pipeline(transaction=True)
+            for f in fields[first:first + 20]:
+                pipe.xadd(IN, f)
+            pipe.xreadgroup("alerter-service", "dead", {IN: ">"}, count=20)
+            for f in fields[first + 20:]:
+                pipe.xadd(IN, f)
+            stolen = pipe.execute()[20][0][1]
+            assert len(stolen) == 20 and store.pending_count(IN, "alerter-service") >= 20
+            while len(svc.summary.hours) < 240 and time.monotonic() < deadline + 60:
+                time.sleep(0.05)
+        finally:
+            svc.stop()
+            thread.join(30)
+    assert outbox_lines(store) == [dumps(a) for a in replay(rec, config).alerts]
+    keys = [f[b"key"] for _, f in store.entries(OUT)]
+    assert len(keys) == len(set(keys)) and len(svc.summary.hours) == 240
+    assert store.pending_count(IN, "alerter-service") == 0 and store.foreign_pending(IN, "alerter-service", "x") == []
+    assert svc.state.counters["claimed"] == 20 and svc.state.counters.get("late", 0) == 0
+    assert "for entries held by consumer=dead" in caplog.text and "claimed partition=0 entries=20" in caplog.text
+    assert "phase=running" in caplog.text
