@@ -79,8 +79,8 @@ if numba is not None:
                                             wraparound=False)
             byte_ptr = ir.IntType(8).as_pointer()
             i32 = ir.IntType(32)
-            fn = cgutils.get_or_insert_function(builder.module, ir.FunctionType(ir.VoidType(), [byte_ptr, i32, i32, i32]),
-                                                "llvm.prefetch.p0")
+            signature_ir = ir.FunctionType(ir.VoidType(), [byte_ptr, i32, i32, i32])
+            fn = cgutils.get_or_insert_function(builder.module, signature_ir, "llvm.prefetch.p0")
             # read/write 1 (the totals are written), locality 3 (keep in all cache levels), data cache
             builder.call(fn, [builder.bitcast(ptr, byte_ptr), ir.Constant(i32, 1), ir.Constant(i32, 3),
                               ir.Constant(i32, 1)])
@@ -144,7 +144,7 @@ def _novelty(ages, ed, a0, a1, inv_tau, table):  # noqa: ANN001, ANN202
 
 
 @_pjit
-def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, a1, inv_tau, age_table,  # noqa: ANN001, ANN201, PLR0913
+def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, a1, inv_tau, age_table,  # noqa: ANN001, ANN201, PLR0913, C901
                  rate_table, pull_table, ridge, tiny, prior, lo, hi, step, eps, scale_rate,
                  quad_mean, node_hours, raw, inflow, part_sum, totals, scratch):
     """One closed hour of the default path, destination by destination.

@@ -104,7 +104,7 @@ Public API
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -501,7 +501,8 @@ class FlowLearner:
         beta = np.zeros((k, e), dt)
         beta[0] = s.prior
         return FlowState(
-            src=src, dst=dst, beta=beta, beta_avg=beta if s.forgetting else beta.copy(), cov=np.zeros((e, s.block_size, s.block_size), dt),
+            src=src, dst=dst, beta=beta, beta_avg=beta if s.forgetting else beta.copy(),
+            cov=np.zeros((e, s.block_size, s.block_size), dt),
             edge_hours=np.zeros(e, np.int32), phi=np.zeros(n, dt), phi_avg=np.zeros(n, dt),
             phi_scale=np.zeros(n, dt), node_hours=np.zeros(n, np.int64), quad_mean=np.zeros(n, dt),
             hist_e=np.zeros((h, n), dt), hist_b=np.zeros((h, n), dt))
@@ -560,14 +561,34 @@ class FlowLearner:
                 raise ValueError("src and dst are needed when keep introduces new edges")
             src, dst = st.src[keep], st.dst[keep]
         n_nodes = max(st.n_nodes, 1)
-        fresh = self._empty(0, index_array(src, n_nodes), index_array(dst, n_nodes))
-        for name in ("beta", "beta_avg"):
-            getattr(fresh, name)[:, kept] = getattr(st, name)[:, keep[kept]]
-        fresh.cov[kept] = st.cov[keep[kept]]
-        fresh.edge_hours[kept] = st.edge_hours[keep[kept]]
+        fresh = self._empty(0, index_array(src, n_nodes), index_array(dst, n_nodes)) if st.n_edges == 0 \
+            else self._gathered(keep, kept, index_array(src, n_nodes), index_array(dst, n_nodes))
         st.beta, st.beta_avg, st.cov, st.edge_hours = fresh.beta, fresh.beta_avg, fresh.cov, fresh.edge_hours
         st.src, st.dst = fresh.src, fresh.dst
         self._buf, self._seg = {}, None
+
+    def _gathered(self, keep: np.ndarray, kept: np.ndarray, src: np.ndarray, dst: np.ndarray) -> FlowState:
+        """The per-edge state at the new positions: one gather per array (new positions read
+        position 0, then are reset to the fresh values of :meth:`_empty`)."""
+        st, s = self.state, self.settings
+        at, new = np.maximum(keep, 0), np.flatnonzero(~kept)
+
+        def take(values: np.ndarray, axis: int) -> np.ndarray:
+            out = np.take(values, at, axis=axis)
+            if axis == 1:
+                out[:, new] = 0
+            else:
+                out[new] = 0
+            return out
+        beta = take(st.beta, 1)
+        beta[0, new] = s.prior
+        if s.forgetting:
+            beta_avg = beta
+        else:
+            beta_avg = take(st.beta_avg, 1)
+            beta_avg[0, new] = s.prior
+        return replace(st, src=src, dst=dst, beta=beta, beta_avg=beta_avg, cov=take(st.cov, 0),
+                       edge_hours=take(st.edge_hours, 0))
 
     # -- reading -------------------------------------------------------------------------
     def sum_into_dst(self, values: np.ndarray) -> np.ndarray:
@@ -962,7 +983,8 @@ class FlowLearner:
         scratch = self._get("scratch", (flow_kernels.threads(), max(int(seg.counts.max(initial=0)), 1)))
         pull = self._hour_table("pull") if s.prior_pull > 0 else np.zeros(1, self.dtype)
         flow_kernels.observe_runs(
-            seg.blocks(), seg.indptr, st.src, np.stack([e, b0], axis=1), ok, sign, st.beta[0], st.cov.reshape(-1), st.edge_hours,
+            seg.blocks(), seg.indptr, st.src, np.stack([e, b0], axis=1), ok, sign, st.beta[0], st.cov.reshape(-1),
+            st.edge_hours,
             ages, a0, a1, 1.0 / s.age_tau_hours if weighted else 0.0, table, self._hour_table("rate"), pull,
             s.ridge, _TINY, s.prior, s.beta_min, s.beta_max, s.step, s.eps, s.scale_rate,
             st.quad_mean, st.node_hours, raw, inflow, part_sum, totals, scratch)

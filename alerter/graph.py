@@ -187,6 +187,9 @@ class LinkGraph:
         self._arrays[name] = np.full((rows, len(self.src)), fill, dtype=dtype)
         self._fills[name] = fill
 
+    def has_array(self, name: str) -> bool:
+        return name in self._arrays
+
     def array(self, name: str) -> np.ndarray:
         """The registered ``(rows, capacity)`` array; column ``slot`` belongs to that edge.
 

@@ -24,12 +24,14 @@ from dataclasses import dataclass
 import numpy as np
 
 from .config import AttributionSettings, FlowConfig
-from .flows import Attribution, FlowLearner, FlowSettings, LinkAges, persistence_forecast
+from .flows import Attribution, FlowLearner, FlowSettings, LinkAges, match_edges, persistence_forecast
 from .graph import LinkGraph
 from .nodes import NodeIndex
 from .records import Upstream
 
 __all__ = ["JointModel", "Removed", "flow_settings"]
+
+_POSITION = "learner_position"  # per-edge graph array: the slot's position in the learner
 
 
 def flow_settings(cfg: FlowConfig, dtype: str) -> FlowSettings:
@@ -95,20 +97,44 @@ class JointModel:
     def sync(self) -> None:
         """Mirror the graph's CSR in the learner when links or nodes changed.
 
-        Kept edges keep their coefficients (matched by (src, dst)); new ones start at the
-        prior. Costs one pass over the edges, only in hours whose structure changed.
+        Kept edges keep their coefficients; new ones start at the prior, and so does a link
+        removed and added again since the last sync (it has a new graph slot). Costs a few
+        passes over the edges, only in hours whose structure changed.
         """
         n = len(self.nodes)
         key = (self.graph.version, n)
         if key == self._synced:
             return
         csr = self.graph.csr()
-        self.learner.resize(n, csr.src_sorted, csr.dst_sorted)
+        keep = self._kept(csr.order, csr.src_sorted, csr.dst_sorted, n)
+        self.learner.resize(n, csr.src_sorted, csr.dst_sorted, keep)
         self.indptr = np.asarray(csr.indptr, np.int64)
         born = self.graph.born[csr.order]
         small = born.size == 0 or (born.min() > -2**31 and born.max() < 2**31)
         self.born = born.astype(np.int32) if small else born  # hour ticks fit int32: half the bytes
         self._synced = key  # type: ignore[assignment]
+
+    def _kept(self, order: np.ndarray, src: np.ndarray, dst: np.ndarray, n: int) -> np.ndarray:
+        """``keep[new position] = learner position of the same link at the last sync, or -1``.
+
+        The graph keeps each slot's learner position in a registered per-edge array (it
+        follows the slots through compaction; new slots start at -1), so matching is one
+        gather and one scatter, O(edges), instead of a sort of every (src, dst) pair. A
+        graph that never held the array (loaded in bulk, or from an older checkpoint) is
+        matched once by pair.
+        """
+        g = self.graph
+        fresh = not g.has_array(_POSITION)
+        if fresh:
+            g.register(_POSITION, np.int32, fill=-1)
+        pos = g.array(_POSITION)[0]
+        old = self.learner.state
+        if fresh and old.src.size:
+            keep = match_edges(old.src, old.dst, src, dst, max(n, 1))
+        else:
+            keep = pos[order].astype(np.int64)
+        pos[order] = np.arange(order.shape[0], dtype=np.int32)
+        return keep
 
     # -- per hour ----------------------------------------------------------------------
     def forecast(self, prev_excess: np.ndarray, tick: int) -> np.ndarray:

@@ -125,3 +125,38 @@ def test_ghost_source_uses_its_owners_figures_and_never_alerts() -> None:
     assert not [a for a in got_alerts if a.node == "/hub"]
     assert got_alerts and [(a.hour, a.kind, a.upstream[0].node) for a in got_alerts] == \
         [(a.hour, a.kind, a.upstream[0].node) for a in want_alerts]
+
+
+def test_links_keep_their_coefficients_through_changes_and_a_re_added_link_starts_fresh() -> None:
+    """Re-sync after link changes: every kept link keeps its learned coefficient (through a
+    graph compaction too), a new link starts at the prior, and a link removed and added again
+    between two hours starts at the prior as well (it is a new link, not the old one)."""
+    hub, child = _hub_child(24 * 5, seed=4)
+    eng, _ = _run(Config(), hub, child)
+    for k in range(6):
+        eng.add_edge(f"/side{k}", "/child", T0)
+    hour = T0 + timedelta(hours=len(hub))
+    counts = {"/hub": hub[-1], "/child": child[-1], **{f"/side{k}": 50.0 for k in range(6)}}
+    for h in range(30):
+        eng.step(hour + timedelta(hours=h), counts)
+    joint = eng.joint
+    prior = float(np.float32(joint.cfg.prior))  # the learner stores float32
+
+    def coefficient(src: str, dst: str) -> float:
+        pos = joint._position(eng.nodes.get(src), eng.nodes.get(dst))
+        assert pos is not None
+        return float(joint.learner.coefficients[0, pos])
+
+    learned = {s: coefficient(s, "/child") for s in ["/hub", *(f"/side{k}" for k in range(6))]}
+    assert all(v != prior for v in learned.values())  # they moved away from the prior
+    later = hour + timedelta(hours=30)
+    assert eng.remove_edge("/side0", "/child", later)
+    eng.add_edge("/side0", "/child", later)  # removed and added again in the same hour
+    eng.add_edge("/new", "/child", later)
+    assert eng.remove_edge("/side1", "/child", later)
+    eng.joint.graph.compact()  # slots renumbered: positions must follow their links
+    eng.joint.sync()
+    assert coefficient("/side0", "/child") == prior and coefficient("/new", "/child") == prior
+    assert joint._position(eng.nodes.get("/side1"), eng.nodes.get("/child")) is None
+    for s in ["/hub", *(f"/side{k}" for k in range(2, 6))]:
+        assert coefficient(s, "/child") == learned[s], s
