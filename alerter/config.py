@@ -196,6 +196,7 @@ class LiveSettings(_Strict):
     """The live path: Redis server, stream names, hour closing, recovery and limits."""
 
     redis_url: str | None = None
+    redis_mode: Literal["auto", "standalone", "cluster"] = "auto"
     password_env: str = Field("ALERTER_REDIS_PASSWORD", min_length=1)
     embedded_dir: str = Field("var/redis", min_length=1)
     consumer: str = Field(constants.CONSUMER, min_length=1)

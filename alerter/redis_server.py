@@ -11,16 +11,17 @@ started; the append-only file keeps the data for the next start.
 from __future__ import annotations
 
 import logging
+import random
 import shutil
 import socket
 import subprocess
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from .errors import ServerSetupError
 
-__all__ = ["find_server_binary", "EmbeddedServer", "LocalServer", "free_port"]
+__all__ = ["find_server_binary", "EmbeddedServer", "LocalServer", "LocalCluster", "free_port"]
 
 log = logging.getLogger(__name__)
 _SOCKET_LIMIT = 100  # unix socket paths longer than ~104 bytes are refused by the kernel
@@ -178,3 +179,93 @@ class LocalServer:
             self.process.terminate()
             self.process.wait(timeout=10)
             self.process = None
+
+
+_SLOTS = 16384  # hash slots of a Redis Cluster
+_BUS_OFFSET = 10000  # a cluster node's bus listens on its port + 10000
+
+
+def _free_cluster_port(taken: set[int]) -> int:
+    """A free port whose cluster-bus port (port + 10000) is free too."""
+    for _ in range(200):
+        port = random.randint(20000, 50000)
+        if port in taken or port + _BUS_OFFSET in taken:
+            continue
+        try:
+            for p in (port, port + _BUS_OFFSET):
+                with socket.socket() as s:
+                    s.bind(("127.0.0.1", p))
+        except OSError:
+            continue
+        return port
+    raise ServerSetupError("no free pair of TCP ports (port and port + 10000) found for a cluster node")
+
+
+def _command(port: int, *args: str) -> bytes:
+    """One command to 127.0.0.1:port in RESP, the reply's raw bytes (setup only)."""
+    payload = f"*{len(args)}\r\n".encode() + b"".join(
+        f"${len(a.encode())}\r\n{a}\r\n".encode() for a in args)
+    with socket.create_connection(("127.0.0.1", port), timeout=10.0) as s:
+        s.sendall(payload)
+        reply = s.recv(65536)
+    if reply.startswith(b"-"):
+        text = reply.decode(errors="replace")
+        raise ServerSetupError(f"cluster node 127.0.0.1:{port} refused {' '.join(args[:2])}: {text}")
+    return reply
+
+
+@dataclass
+class LocalCluster:
+    """A Redis Cluster of ``masters`` redis-server children on free TCP ports (tests, benchmarks).
+
+    Each node runs with ``cluster-enabled yes`` and its own folder; the slots are split into
+    equal ranges with CLUSTER ADDSLOTS, the nodes joined with CLUSTER MEET, and ``start``
+    returns once every node reports ``cluster_state:ok``.
+    """
+
+    data_dir: Path
+    masters: int = 3
+    splits: tuple[int, ...] = ()  # first slot of each master but the first (default: equal ranges)
+    ports: list[int] = field(default_factory=list)
+    processes: list[subprocess.Popen[bytes]] = field(default_factory=list)
+
+    @property
+    def url(self) -> str:
+        return f"redis://127.0.0.1:{self.ports[0]}/0"
+
+    def start(self, timeout: float = 30.0) -> str:
+        binary = find_server_binary()
+        taken: set[int] = set()
+        for k in range(self.masters):
+            port = _free_cluster_port(taken)
+            taken.update((port, port + _BUS_OFFSET))
+            folder = self.data_dir / f"node-{k}"
+            folder.mkdir(parents=True, exist_ok=True)
+            args = [binary, "--port", str(port), "--bind", "127.0.0.1", "--dir", str(folder),
+                    "--cluster-enabled", "yes", "--cluster-config-file", "nodes.conf",
+                    "--cluster-node-timeout", "5000", "--appendonly", "yes", "--save", "",
+                    "--logfile", str(folder / "redis.log")]
+            self.processes.append(subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL))
+            self.ports.append(port)
+        bounds = [0, *(self.splits or [k * _SLOTS // self.masters for k in range(1, self.masters)]), _SLOTS]
+        if len(bounds) != self.masters + 1 or bounds != sorted(bounds):
+            raise ServerSetupError(f"splits {self.splits}: need {self.masters - 1} rising slots in 1..16383")
+        for k, port in enumerate(self.ports):
+            _wait(lambda p=port: _ping_tcp(p), f"127.0.0.1:{port}", self.data_dir / f"node-{k}" / "redis.log")
+            _command(port, "CLUSTER", "ADDSLOTS", *map(str, range(bounds[k], bounds[k + 1])))
+        for port in self.ports[1:]:
+            _command(port, "CLUSTER", "MEET", "127.0.0.1", str(self.ports[0]))
+        _wait(self._ok, f"cluster {self.ports}", self.data_dir / "node-0" / "redis.log", timeout)
+        log.info("redis cluster started ports=%s", self.ports)
+        return self.url
+
+    def _ok(self) -> bool:
+        infos = [_command(p, "CLUSTER", "INFO") for p in self.ports]
+        return all(b"cluster_state:ok" in i and b"cluster_known_nodes:%d" % self.masters in i for i in infos)
+
+    def stop(self) -> None:
+        for proc in self.processes:
+            proc.terminate()
+        for proc in self.processes:
+            proc.wait(timeout=10)
+        self.processes, self.ports = [], []

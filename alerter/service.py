@@ -39,7 +39,7 @@ from .engine import Engine
 from .errors import BadEntryError
 from .incidents import IncidentUpdate
 from .records import Alert, dumps
-from .store import Entry, FieldsIn, Pending, Store, id_key, with_retry
+from .store import Entry, FieldsIn, Pending, Store, check_one_slot, id_key, with_retry
 from .sync import ExchangeAbandoned, HourExchange
 from .timeaxis import format_hour
 from .wire import CountBatch, EdgeChange, decode_entry, fields_text
@@ -98,6 +98,9 @@ class Service:
         self.partition, self.drained, self.clock = partition, drained, clock
         self.consumer = consumer or config.live.consumer
         self.names = Names.of(config.live.names, partition)
+        if store.cluster:  # the hour's commit is one MULTI/EXEC over these: one hash slot
+            n = self.names
+            check_one_slot(f"partition {partition}", [n.input, n.outbox, n.dead, n.late, n.checkpoint])
         self.on_alert = on_alert
         self.state = ServiceState(Engine(config))
         self.summary = Summary()

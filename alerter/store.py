@@ -6,6 +6,11 @@ the checkpoint in one MULTI/EXEC), acknowledge, and the per-hour excess barrier.
 redis-py exception is translated here into StoreUnavailableError (the server cannot be
 reached: the caller retries with backoff) or StoreError (a command failed), with the
 server's URL redacted so no password reaches a log line.
+
+The client is a ``redis.Redis`` or, on a Redis Cluster (``live.redis_mode``), a
+``redis.cluster.RedisCluster``: the same commands, routed by key. Every MULTI/EXEC here
+touches the keys of one partition (hash tag ``{p#}``) or one hour's exchange hash (``{h@}``)
+only, so each stays in one hash slot as a cluster requires (:func:`check_one_slot`).
 """
 
 from __future__ import annotations
@@ -21,12 +26,14 @@ from pathlib import Path
 from typing import Any, TypeVar
 
 import redis
+from redis.cluster import RedisCluster
+from redis.crc import key_slot
 
 from .config import LiveSettings
 from .errors import StoreError, StoreUnavailableError
 from .redis_server import EmbeddedServer
 
-__all__ = ["Store", "Entry", "Pending", "redact", "connect", "id_key", "with_retry"]
+__all__ = ["Store", "Entry", "Pending", "redact", "connect", "id_key", "with_retry", "check_one_slot"]
 
 log = logging.getLogger(__name__)
 Entry = tuple[bytes, dict[bytes, bytes]]
@@ -65,11 +72,30 @@ class Pending:
     idle_ms: int
 
 
+def check_one_slot(what: str, keys: Sequence[str]) -> None:
+    """Raise StoreError unless every key hashes to one Redis Cluster slot (a MULTI/EXEC over
+    them is then allowed on a cluster); names the keys and their slots.
+
+    >>> check_one_slot("partition 0", ["alerter:{p0}:in", "alerter:{p0}:checkpoint"])
+    >>> check_one_slot("partition 0", ["alerter:{p0}:in", "alerter:p0:checkpoint"])  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    alerter.errors.StoreError: the keys of partition 0 fall in 2 Redis Cluster hash slots (...15882, ...
+    """
+    slots = {k: key_slot(k.encode()) for k in keys}
+    if len(set(slots.values())) > 1:
+        listed = ", ".join(f"{k}={v}" for k, v in slots.items())
+        raise StoreError(f"the keys of {what} fall in {len(set(slots.values()))} Redis Cluster hash slots "
+                         f"({listed}), but one MULTI/EXEC writes them together; give every name in live.names "
+                         "the same hash tag, e.g. alerter:{p#}:in")
+
+
 @contextmanager
 def _translated(what: str, where: str) -> Iterator[None]:
     try:
         yield
-    except (redis.ConnectionError, redis.TimeoutError) as exc:
+    except (redis.ConnectionError, redis.TimeoutError, redis.exceptions.ClusterDownError,
+            redis.exceptions.SlotNotCoveredError) as exc:
         raise StoreUnavailableError(
             f"Redis at {where} unreachable during {what}: {exc}; check that the server runs and the URL "
             "(--redis or live.redis_url) and password variable (live.password_env) are right"
@@ -77,18 +103,22 @@ def _translated(what: str, where: str) -> Iterator[None]:
     except redis.AuthenticationError as exc:
         raise StoreUnavailableError(f"Redis at {where} refused the password during {what}: {exc}; "
                                     "set the variable named by live.password_env") from exc
-    except redis.RedisError as exc:
+    except redis.exceptions.CrossSlotTransactionError as exc:
+        raise StoreError(f"Redis Cluster at {where} refused {what}: {exc}; the keys of one transaction need "
+                         "one hash tag (live.names)") from exc
+    except (redis.RedisError, redis.exceptions.RedisClusterException) as exc:
         raise StoreError(f"Redis command {what} failed at {where}: {exc}") from exc
 
 
 @dataclass
 class Store:
-    """A connection to one Redis server (``decode_responses`` off: entries may be binary)."""
+    """A connection to one Redis server or cluster (``decode_responses`` off: entries may be binary)."""
 
     client: redis.Redis
     where: str
     server: EmbeddedServer | None = None
     calls: dict[str, int] = field(default_factory=dict)
+    cluster: bool = False
 
     def _do(self, what: str, fn: Callable[[], T]) -> T:
         with _translated(what, self.where):
@@ -321,7 +351,8 @@ def with_retry(fn: Callable[[], T], initial: float, ceiling: float, what: str,
 
 
 def connect(live: LiveSettings, url: str | None = None) -> Store:
-    """Open the configured server: ``url`` (``--redis``), else ``live.redis_url``, else embedded."""
+    """Open the configured server: ``url`` (``--redis``), else ``live.redis_url``, else embedded;
+    a Redis Cluster when ``live.redis_mode`` says so or, with ``auto``, the server does."""
     target = url or live.redis_url
     server = None
     if target is None:
@@ -331,9 +362,31 @@ def connect(live: LiveSettings, url: str | None = None) -> Store:
     kwargs: dict[str, Any] = {"socket_timeout": 30, "socket_connect_timeout": 10, "health_check_interval": 30}
     if password is not None:
         kwargs["password"] = password
-    with _translated("connect", redact(target)):
-        client = redis.Redis.from_url(target, **kwargs)
-    store = Store(client, redact(target), server)
+    where = redact(target)
+    with _translated("connect", where):
+        client: Any = redis.Redis.from_url(target, **kwargs)
+    store = Store(client, where, server)
     store.ping()
-    log.info("redis connected url=%s embedded=%s", store.where, server is not None)
+    if _wants_cluster(live.redis_mode, store, target):
+        client.close()
+        with _translated("connect (cluster)", where):
+            store = Store(RedisCluster.from_url(target, **kwargs), where, server, cluster=True)  # type: ignore[arg-type]
+        store.ping()
+    log.info("redis connected url=%s embedded=%s cluster=%s", store.where, server is not None, store.cluster)
     return store
+
+
+def _wants_cluster(mode: str, store: Store, target: str) -> bool:
+    """Whether to reconnect as a cluster client; an error when the mode and server disagree."""
+    if mode == "standalone":
+        return False
+    info: Any = store._do("INFO cluster", lambda: store.client.info("cluster"))
+    enabled = bool(int(info.get("cluster_enabled", 0)))
+    if mode == "cluster" and not enabled:
+        raise StoreError(f"live.redis_mode is cluster but the server at {store.where} has cluster mode off "
+                         "(INFO cluster: cluster_enabled:0); set live.redis_mode to standalone or auto, "
+                         "or point --redis / live.redis_url at a cluster node")
+    if enabled and target.startswith("unix://"):
+        raise StoreError(f"{store.where} is a Redis Cluster node on a unix socket; redis-py's cluster client "
+                         "needs TCP: use redis://HOST:PORT of any cluster node")
+    return enabled
