@@ -26,8 +26,8 @@ import os
 
 import numpy as np
 
-__all__ = ["AVAILABLE", "balanced_blocks", "direction", "forecast_runs", "observe_runs", "scale", "step",
-           "threads"]
+__all__ = ["AVAILABLE", "balanced_blocks", "direction", "forecast_runs", "gather_edges", "observe_runs", "scale",
+           "step", "threads"]
 
 try:
     if os.environ.get("ALERTER_FLOW_KERNEL", "") == "numpy":  # force the fallback (benchmarks, CI)
@@ -217,6 +217,28 @@ def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, 
                     beta[ed] = min(max(np.float64(beta[ed]), lo), hi)
                     if beta[ed] > 0:
                         tot[src[ed]] += np.float64(beta[ed])
+
+
+@_pjit
+def gather_edges(keep, beta, cov, hours, new_beta, new_cov, new_hours, prior):  # noqa: ANN001, ANN201
+    """Per-edge state at new positions after links changed, in one parallel pass: position
+    ``p`` takes old position ``keep[p]``, or starts fresh (``prior`` in lag 0, zero elsewhere,
+    zero variance and hours) where ``keep[p]`` is -1. ``beta`` is (lags, E), ``cov`` (E, m)."""
+    for p in _prange(keep.shape[0]):
+        q = keep[p]
+        if q >= 0:
+            for r in range(beta.shape[0]):
+                new_beta[r, p] = beta[r, q]
+            for c in range(cov.shape[1]):
+                new_cov[p, c] = cov[q, c]
+            new_hours[p] = hours[q]
+        else:
+            new_beta[0, p] = prior
+            for r in range(1, beta.shape[0]):
+                new_beta[r, p] = 0
+            for c in range(cov.shape[1]):
+                new_cov[p, c] = 0
+            new_hours[p] = 0
 
 
 @_pjit

@@ -549,7 +549,9 @@ class FlowLearner:
         new edges' endpoints come from ``src``/``dst``; without them every position must be
         kept (the endpoints are then gathered from the old edges).
         """
-        keep = np.asarray(keep, dtype=np.int64)
+        keep = np.asarray(keep)
+        if keep.dtype not in (np.int32, np.int64):  # int32 from the graph's slot positions: no copy
+            keep = keep.astype(np.int64)
         if keep.shape != (n_new,):
             raise ValueError(f"keep must have shape ({n_new},), got {keep.shape}")
         st = self.state
@@ -571,6 +573,8 @@ class FlowLearner:
         """The per-edge state at the new positions: one gather per array (new positions read
         position 0, then are reset to the fresh values of :meth:`_empty`)."""
         st, s = self.state, self.settings
+        if flow_kernels.AVAILABLE:
+            return self._gathered_fused(keep, src, dst)
         at, new = np.maximum(keep, 0), np.flatnonzero(~kept)
 
         def take(values: np.ndarray, axis: int) -> np.ndarray:
@@ -589,6 +593,21 @@ class FlowLearner:
             beta_avg[0, new] = s.prior
         return replace(st, src=src, dst=dst, beta=beta, beta_avg=beta_avg, cov=take(st.cov, 0),
                        edge_hours=take(st.edge_hours, 0))
+
+    def _gathered_fused(self, keep: np.ndarray, src: np.ndarray, dst: np.ndarray) -> FlowState:
+        """:meth:`_gathered` as one parallel kernel pass per iterate (see flow_kernels)."""
+        st, s = self.state, self.settings
+        e, m = keep.shape[0], st.cov.shape[1] * st.cov.shape[2]
+        beta, cov = np.empty((st.beta.shape[0], e), st.beta.dtype), np.empty((e, *st.cov.shape[1:]), st.cov.dtype)
+        hours = np.empty(e, st.edge_hours.dtype)
+        old_cov = st.cov.reshape(st.n_edges, m)
+        flow_kernels.gather_edges(keep, st.beta, old_cov, st.edge_hours, beta, cov.reshape(e, m), hours, s.prior)
+        beta_avg = beta
+        if not s.forgetting:
+            beta_avg = np.empty_like(beta)
+            flow_kernels.gather_edges(keep, st.beta_avg, old_cov[:, :0], st.edge_hours, beta_avg,
+                                      np.empty((e, 0), st.cov.dtype), np.empty_like(hours), s.prior)
+        return replace(st, src=src, dst=dst, beta=beta, beta_avg=beta_avg, cov=cov, edge_hours=hours)
 
     # -- reading -------------------------------------------------------------------------
     def sum_into_dst(self, values: np.ndarray) -> np.ndarray:

@@ -132,7 +132,7 @@ class JointModel:
         if fresh and old.src.size:
             keep = match_edges(old.src, old.dst, src, dst, max(n, 1))
         else:
-            keep = pos[order].astype(np.int64)
+            keep = pos[order]
         pos[order] = np.arange(order.shape[0], dtype=np.int32)
         return keep
 

@@ -10,7 +10,8 @@ baseline's methods. It prints peak memory (``ru_maxrss``, whole process includin
 build; and the peak over the timed ticks alone), an estimate of the bytes the per-edge
 flow step moves, a measured memory bandwidth (``np.copyto`` of a 1 GiB float32 array) and
 the ratio of the measured flow time to that bandwidth bound. Targets (PASS/MISS): full
-tick < 250 ms, peak memory < 2 GiB.
+tick < 250 ms, peak memory < 2 GiB. A few extra ticks whose hours also add and remove links
+(``--changes``) show what the learner's re-sync with the graph adds to such an hour.
 
 Run: ``.venv/bin/python benchmarks/bench_tick.py [--quick] [--ticks N] [--warm N]``.
 """
@@ -168,6 +169,38 @@ def run_ticks(eng: Engine, data: list[np.ndarray], warm: int, ticks: int, seed: 
     return timer, alerts
 
 
+def change_ticks(eng: Engine, data: list[np.ndarray], first: int, ticks: int, changes: int,
+                 seed: int) -> tuple[list[float], list[float]]:
+    """Ticks whose hour also brings ``changes`` link events (half removals of random existing
+    links, half new links): the learner's re-sync with the graph runs inside the tick.
+    Returns (tick ms, sync ms) per tick."""
+    rng = np.random.default_rng(seed + 2)
+    ids, n = eng.nodes.ids, len(eng.nodes)
+    sync_ms: list[float] = []
+    inner = eng.joint.sync
+
+    def timed() -> None:
+        t0 = time.perf_counter()
+        inner()
+        sync_ms[-1] += (time.perf_counter() - t0) * 1e3
+    eng.joint.sync = timed  # type: ignore[method-assign]
+    out = []
+    for k in range(ticks):
+        hour = START + timedelta(hours=first + k)
+        st = eng.joint.learner.state
+        for p in rng.choice(st.n_edges, changes // 2, replace=False).tolist():
+            eng.remove_edge(ids[int(st.src[p])], ids[int(st.dst[p])], hour)
+        for s, d in rng.integers(0, n, size=(changes - changes // 2, 2)).tolist():
+            if s != d:
+                eng.add_edge(ids[s], ids[d], hour)
+        sync_ms.append(0.0)
+        t0 = time.perf_counter()
+        eng.step_array(hour, data[(first + k) % len(data)])
+        out.append((time.perf_counter() - t0) * 1e3)
+    eng.joint.sync = inner  # type: ignore[method-assign]
+    return out, sync_ms
+
+
 # -- memory ------------------------------------------------------------------------------
 def peak_gib() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20  # Linux: KiB
@@ -222,7 +255,8 @@ def edge_passes(eng: Engine) -> list[tuple[str, int]]:
             ("forecast_runs: read src, beta", i_src + f),
             ("observe_runs pass 1: read src, born, beta, hours; cov read+write; write raw",
              i_src + born + f + h_e + 2 * f + f),
-            ("observe_runs pass 2: read src, born, cov; beta and hours read+write", i_src + born + f + 2 * f + 2 * h_e),
+            ("observe_runs pass 2: read src, born, cov; beta and hours read+write",
+             i_src + born + f + 2 * f + 2 * h_e),
             ("scale (cap binds): read src; beta read+write", i_src + 2 * f),
         ]
     return [
@@ -256,6 +290,9 @@ def main() -> None:
     ap.add_argument("--ticks", type=int, default=7, help="timed ticks (>= 5)")
     ap.add_argument("--warm", type=int, default=4, help="warm-up hours before timing")
     ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--changes", type=int, default=1000,
+                    help="link events per hour in the extra change ticks (0: none)")
+    ap.add_argument("--change-ticks", type=int, default=3, help="extra ticks with link changes")
     args = ap.parse_args()
     scale = 20 if args.quick else 1
     n, e = N_NODES // scale, N_EDGES // scale
@@ -281,6 +318,12 @@ def main() -> None:
     print(f"peak memory (ru_maxrss, whole process incl. build): {peak:.2f} GiB  "
           f"[target < {TARGET_PEAK_GIB:g} GiB: {verdict(peak < TARGET_PEAK_GIB)}]; "
           f"peak over the ticks alone (VmHWM after reset): {tick_peak:.2f} GiB")
+    if args.changes and args.change_ticks:
+        ticks_ms, sync_ms = change_ticks(eng, data, args.warm + args.ticks, args.change_ticks, args.changes,
+                                         args.seed)
+        print(f"tick with {args.changes} link changes (half removed, half new): median "
+              f"{statistics.median(ticks_ms):8.1f} ms over {len(ticks_ms)} ticks, of which learner re-sync "
+              f"with the graph {statistics.median(sync_ms):.1f} ms; peak memory now {peak_gib():.2f} GiB")
     passes = edge_passes(eng)
     edges = eng.joint.learner.state.n_edges
     per_edge = sum(b for _, b in passes)

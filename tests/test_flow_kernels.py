@@ -140,3 +140,28 @@ def test_cap_totals_hook_makes_two_halves_learn_like_the_whole() -> None:
     each = np.bincount(SRC[halves[0][1]], weights=halves[0][0].coefficients[0], minlength=N)
     assert (np.bincount(SRC, weights=whole.coefficients[0], minlength=N) <= 0.3 + 1e-9).all()
     assert each.max() < 0.3 + 1e-9
+
+
+@pytest.mark.parametrize("kw", [dict(), dict(dtype="float64", forgetting=False, lags=1, own_lag=True)])
+def test_regather_after_link_changes_equals_numpy(kw: dict, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The one-pass kernel that moves per-edge state to new positions after links changed gives
+    exactly what the numpy gathers give: kept links keep every value, new ones start fresh."""
+    fused, plain = _pair(**kw)
+    for _, x, b in _hours(30):
+        fused.observe(x, b, None)
+        plain.observe(x, b, None)
+    rng = np.random.default_rng(5)
+    keep = rng.permutation(SRC.size)[: SRC.size - 20]
+    keep[rng.choice(keep.size, 15, replace=False)] = -1  # 15 brand-new links
+    src, dst = rng.integers(0, N, keep.size), rng.integers(0, N, keep.size)
+    fused.reindex(keep, keep.size, src, dst)
+    with monkeypatch.context() as m:
+        m.setattr(flow_kernels, "AVAILABLE", False)
+        plain.reindex(keep, keep.size, src, dst)
+    a, b_ = fused.state, plain.state
+    for name in ("beta", "beta_avg", "cov", "edge_hours", "src", "dst"):
+        np.testing.assert_array_equal(getattr(a, name), getattr(b_, name), err_msg=name)
+    assert (a.beta_avg is a.beta) == fused.settings.forgetting
+    new = keep < 0
+    assert np.all(a.beta[0, new] == a.beta.dtype.type(fused.settings.prior)) and np.all(a.beta[1:, new] == 0)
+    assert np.all(a.edge_hours[new] == 0) and np.all(a.edge_hours[~new] > 0)
