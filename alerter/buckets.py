@@ -15,6 +15,7 @@ from __future__ import annotations
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
+from weakref import WeakKeyDictionary
 
 import numpy as np
 
@@ -62,17 +63,42 @@ def watermark_due(hour: datetime, watermark: datetime | None) -> bool:
     return watermark is not None and watermark > hour
 
 
+# Per node index: the index arrays of id lists already interned, by their packed bytes
+# (``wire.PackedIds``). Valid for ever, since interned ids never move; a restored
+# checkpoint brings a new NodeIndex, hence a fresh table.
+_MAPPINGS: WeakKeyDictionary[NodeIndex, dict[bytes, np.ndarray]] = WeakKeyDictionary()
+_MAPPINGS_KEPT = 256  # id lists remembered per index (a few per partition and producer)
+
+
+def _indices(index: NodeIndex, nodes: list[str]) -> np.ndarray:
+    packed = getattr(nodes, "packed", None)
+    if packed is None:
+        return index.intern(nodes)
+    known = _MAPPINGS.setdefault(index, {})
+    hit = known.get(packed)
+    if hit is None:
+        if len(known) >= _MAPPINGS_KEPT:
+            known.clear()
+        hit = known[packed] = index.intern(nodes)
+        hit.setflags(write=False)
+    return hit
+
+
 def dense_counts(index: NodeIndex, chunks: Sequence[tuple[list[str], np.ndarray]]) -> np.ndarray:
     """One hour's chunks as a dense array indexed like ``index`` (NaN missing).
 
     New ids are interned in arrival order, as a dict of the same counts would be; a node
-    given twice keeps its last value.
+    given twice keeps its last value. An id list unpacked from the same bytes as one seen
+    before (``wire.PackedIds``) reuses that list's indices: no per-id lookup in a steady hour.
 
     >>> idx = NodeIndex()
     >>> dense_counts(idx, [(["/a", "/b"], np.array([1.0, 2.0])), (["/a"], np.array([5.0]))]).tolist()
     [5.0, 2.0]
+    >>> from alerter.wire import PackedIds
+    >>> [dense_counts(idx, [(PackedIds(["/c", "/a"], b"/c\\n/a"), np.array([7.0, v]))]).tolist() for v in (8, 9)]
+    [[8.0, nan, 7.0], [9.0, nan, 7.0]]
     """
-    parts = [index.intern(nodes) for nodes, _ in chunks]
+    parts = [_indices(index, nodes) for nodes, _ in chunks]
     x = np.full(len(index), np.nan)
     for idx, (_, values) in zip(parts, chunks, strict=True):
         x[idx] = values
