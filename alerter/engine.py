@@ -211,15 +211,9 @@ class Engine:
         for d, ticks in self.last_beyond.items():
             ticks[self.rules.active[d]] = tick
         if track:
-            result.incidents, result.spills = self.track(hour, result.alerts, self._beyond_since)
+            result.incidents, result.spills = self.track(hour, result.alerts, _Beyond(self))
         self.last_hour = hour
         return result
-
-    def _beyond_since(self, node: str, direction: str) -> int | None:
-        i = self.nodes.get(node) if node in self.nodes else -1
-        ticks = self.last_beyond[direction]
-        t = int(ticks[i]) if 0 <= i < ticks.shape[0] else _NEVER
-        return None if t == _NEVER else t
 
     def track(self, hour: datetime, alerts: list[Alert],
               active: Active) -> tuple[list[IncidentUpdate], list[SpillWarning]]:
@@ -320,3 +314,21 @@ class Engine:
         slot, day = local_slots(nxt, self.tz)
         b_next = np.maximum(self.baseline.from_working(self.baseline.forecast(slot, day).astype(float)), 0.0)
         return b_next + self.joint.forecast(self.prev_excess, hour_index(hour) + 1)
+
+
+class _Beyond:
+    """The incident tracker's view of ``Engine.last_beyond``: the last tick a node was beyond
+    its band (by id), and every (node, direction) beyond at a tick (one array scan)."""
+
+    def __init__(self, engine: Engine) -> None:
+        self.nodes, self.last = engine.nodes, engine.last_beyond
+
+    def __call__(self, node: str, direction: str) -> int | None:
+        i = self.nodes.get(node) if node in self.nodes else -1
+        ticks = self.last[direction]
+        t = int(ticks[i]) if 0 <= i < ticks.shape[0] else _NEVER
+        return None if t == _NEVER else t
+
+    def beyond_at(self, tick: int) -> list[tuple[str, str]]:
+        ids = self.nodes.ids
+        return [(ids[i], d) for d, ticks in self.last.items() for i in np.flatnonzero(ticks == tick).tolist()]

@@ -144,7 +144,8 @@ class IncidentTracker:
         self._members: dict[tuple[str, str], Incident] | None = None  # (node, direction) -> open incident
 
     def _owner(self, node: str, direction: str) -> Incident | None:
-        """The open incident holding ``node`` in ``direction`` (index built once per hour)."""
+        """The open incident holding ``node`` in ``direction`` (an index built once, then kept
+        up to date as members join, incidents merge and close)."""
         if self._members is None:
             self._members = {(m, inc.direction): inc for inc in self.open.values() for m in inc.members}
         return self._members.get((node, direction))
@@ -177,7 +178,7 @@ class IncidentTracker:
             for key in active:
                 self.recent_active[key] = tick
             lookup = None
-        self._lookup, self._members = lookup, None
+        self._lookup = lookup
         for a in alerts:
             self.recent_active[(a.node, a.kind)] = tick
         by_direction: dict[str, list[Alert]] = {}
@@ -189,7 +190,7 @@ class IncidentTracker:
         self._touch_members(tick)
         updates = self._lifecycle(tick, hour, changed)
         self.recent_active = {k: v for k, v in self.recent_active.items() if tick - v <= self.adjacent_hours}
-        self._lookup, self._members = None, None
+        self._lookup = None
         return updates
 
     def _last_beyond(self, node: str, direction: str) -> int | None:
@@ -254,6 +255,20 @@ class IncidentTracker:
         del self.open[other.id]
 
     def _touch_members(self, tick: int) -> None:
+        """Members beyond their band this hour (with or without an alert) keep their incident
+        active. With a lookup that can list who is beyond at a tick (``beyond_at``), only
+        those nodes are visited; otherwise every member of every open incident."""
+        beyond_at = getattr(self._lookup, "beyond_at", None)
+        if beyond_at is not None:
+            pairs = {k for k, v in self.recent_active.items() if v == tick}
+            pairs.update(beyond_at(tick))
+            for node, direction in pairs:
+                inc = self._owner(node, direction)
+                member = inc.members.get(node) if inc is not None else None
+                if member is not None and inc is not None:
+                    member.last_active = tick
+                    inc.last_active = tick
+            return
         for inc in self.open.values():
             for node, member in inc.members.items():
                 if self._last_beyond(node, inc.direction) == tick:
@@ -273,7 +288,8 @@ class IncidentTracker:
             else:
                 state = IncidentState.SUBSIDING
             root_before = inc.root
-            inc.pick_root()
+            if new is not None or not inc.root:  # members' figures change only with alerts or merges
+                inc.pick_root()
             if state == inc.state and not new and inc.root == root_before and inc.revision > 0:
                 continue
             inc.state, inc.last_update = state, hour
@@ -285,4 +301,8 @@ class IncidentTracker:
             ))
         for inc in [i for i in self.open.values() if i.state == IncidentState.CLOSED]:
             del self.open[inc.id]
+            if self._members is not None:
+                for m in inc.members:
+                    if self._members.get((m, inc.direction)) is inc:
+                        del self._members[(m, inc.direction)]
         return updates

@@ -160,3 +160,37 @@ def test_links_keep_their_coefficients_through_changes_and_a_re_added_link_start
     assert joint._position(eng.nodes.get("/side1"), eng.nodes.get("/child")) is None
     for s in ["/hub", *(f"/side{k}" for k in range(2, 6))]:
         assert coefficient(s, "/child") == learned[s], s
+
+
+def test_incident_tracking_visits_only_nodes_beyond_their_band_with_the_same_result() -> None:
+    """A storm of surges on a random graph: incidents tracked through the engine's lookup that
+    lists who is beyond the band (visits only those) equal incidents tracked through a plain
+    per-node lookup (visits every member of every open incident), update for update."""
+    rng = np.random.default_rng(11)
+    n = 300
+    ids = [f"/p{i}" for i in range(n)]
+    edges = {(int(s), int(d)) for s, d in rng.integers(0, n, size=(1500, 2)) if s != d}
+    level = rng.lognormal(4.0, 1.0, n)
+    engines = [Engine(Config()), Engine(Config())]
+    for eng in engines:
+        for s, d in sorted(edges):
+            eng.add_edge(ids[s], ids[d], T0)
+    got: list[list] = [[], []]
+    for h in range(24 * 6):
+        rate = level * (1 + 0.5 * np.sin(2 * np.pi * (h % 24) / 24))
+        if h > 24 * 4 and h % 3 == 0:
+            rate[rng.choice(n, 15, replace=False)] *= 8.0
+        counts = dict(zip(ids, rng.poisson(rate).astype(float).tolist(), strict=True))
+        hour = T0 + timedelta(hours=h)
+        for k, eng in enumerate(engines):
+            res = eng.step(hour, counts) if k == 0 else eng.step_array(hour, eng.counts_array(counts), track=False)
+            if k == 1:
+                res.incidents, _ = eng.track(hour, res.alerts, lambda node, d, e=eng: _last(e, node, d))
+            got[k].extend(res.incidents)
+    assert len(got[0]) > 50 and got[0] == got[1]
+
+
+def _last(eng: Engine, node: str, direction: str) -> int | None:
+    """``Engine.last_beyond`` of one node as a plain function (no listing of who is beyond)."""
+    t = int(eng.last_beyond[direction][eng.nodes.get(node)])
+    return None if t == np.iinfo(np.int64).min else t
