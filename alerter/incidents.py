@@ -279,14 +279,7 @@ class IncidentTracker:
         updates = []
         for inc in sorted(self.open.values(), key=lambda i: (i.start_tick, i.id)):
             new = changed.get(inc.id)
-            if inc.id in changed:
-                state = IncidentState.OPEN if inc.revision == 0 or not new else IncidentState.GROWING
-            elif inc.last_active == tick:
-                state = IncidentState.OPEN
-            elif tick - inc.last_active >= self.quiet_hours:
-                state = IncidentState.CLOSED
-            else:
-                state = IncidentState.SUBSIDING
+            state = self._state(inc, tick, new)
             root_before = inc.root
             if new is not None or not inc.root:  # members' figures change only with alerts or merges
                 inc.pick_root()
@@ -300,9 +293,22 @@ class IncidentTracker:
                 members=tuple(sorted(inc.members)), new_members=new or (), total_excess=inc.total_excess,
             ))
         for inc in [i for i in self.open.values() if i.state == IncidentState.CLOSED]:
-            del self.open[inc.id]
-            if self._members is not None:
-                for m in inc.members:
-                    if self._members.get((m, inc.direction)) is inc:
-                        del self._members[(m, inc.direction)]
+            self._close(inc)
         return updates
+
+    def _state(self, inc: Incident, tick: int, new: tuple[str, ...] | None) -> IncidentState:
+        """This hour's state: ``new`` is None when no alert joined it this hour."""
+        if new is not None:
+            return IncidentState.OPEN if inc.revision == 0 or not new else IncidentState.GROWING
+        if inc.last_active == tick:
+            return IncidentState.OPEN
+        if tick - inc.last_active >= self.quiet_hours:
+            return IncidentState.CLOSED
+        return IncidentState.SUBSIDING
+
+    def _close(self, inc: Incident) -> None:
+        del self.open[inc.id]
+        if self._members is not None:
+            for m in inc.members:
+                if self._members.get((m, inc.direction)) is inc:
+                    del self._members[(m, inc.direction)]
