@@ -4,11 +4,15 @@ from __future__ import annotations
 
 import gzip
 import json
+import os
+import subprocess
+import sys
 from datetime import datetime, timedelta
 from pathlib import Path
 
 import numpy as np
 
+from alerter.store import Store
 from alerter.timeaxis import format_hour
 
 START = datetime.fromisoformat("2026-11-02T07:00:00+00:00")
@@ -51,3 +55,23 @@ def small_recording(tmp_path: Path, name: str = "small.jsonl") -> Path:
     """Three nodes, ten days; '/hot' surges x6 at hour 200."""
     series = {"/": daily_counts(240, 800, 1), "/hot": daily_counts(240, 120, 2), "/cold": daily_counts(240, 60, 3)}
     return write_recording(tmp_path / name, series, surge={"/hot": (200, 6.0)}, edges=[("/", "/hot")])
+
+
+def run_workers(url: str, config_file: Path, partitions: tuple[int, ...] = (0, 1)) -> list[dict]:
+    """Run one ``alerter run --until-drained`` process per partition (consumer ``w<p>``) at once,
+    wait for all, and return each one's JSON summary (a failing one shows its log's end)."""
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
+    procs = [subprocess.Popen([sys.executable, "-m", "alerter.cli", "run", "--until-drained", "--redis", url,
+                               "--config", str(config_file), "--partitions", str(p), "--consumer", f"w{p}", "--json"],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env) for p in partitions]
+    out = []
+    for proc in procs:
+        stdout, err = proc.communicate(timeout=300)
+        assert proc.returncode == 0, err.decode()[-2000:]
+        out.append(json.loads(stdout))
+    return out
+
+
+def outbox_of(store: Store, partition: int, kind: bytes, field: bytes) -> list[str]:
+    """The ``field`` of every outbox entry of ``type=kind`` of one partition, in stream order."""
+    return [f[field].decode() for _, f in store.entries(f"alerter:{{p{partition}}}:outbox") if f[b"type"] == kind]

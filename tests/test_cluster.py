@@ -4,10 +4,6 @@ finds the cluster, and a name without the partition's hash tag is refused before
 
 from __future__ import annotations
 
-import json
-import os
-import subprocess
-import sys
 from pathlib import Path
 
 import pytest
@@ -23,9 +19,8 @@ from alerter.store import Store, connect
 from alerter.wire import partition_of
 
 from .conftest_redis import cluster_url, redis_url  # noqa: F401 - fixtures
-from .helpers import small_recording
+from .helpers import outbox_of, run_workers, small_recording
 
-ROOT = Path(__file__).resolve().parent.parent
 TWO_ON_CLUSTER = """\
 live:
   partitions: 2
@@ -37,10 +32,6 @@ def _cluster(url: str) -> Store:
     st = connect(LiveSettings(redis_mode="cluster"), url)
     st.client.flushall(target_nodes=RedisCluster.PRIMARIES)
     return st
-
-
-def _outbox(st: Store, partition: int, kind: bytes, field: bytes) -> list[str]:
-    return [f[field].decode() for _, f in st.entries(f"alerter:{{p{partition}}}:outbox") if f[b"type"] == kind]
 
 
 def test_two_partitions_on_a_cluster_give_the_alerts_of_one_worker(tmp_path: Path, cluster_url: str) -> None:  # noqa: F811
@@ -59,18 +50,11 @@ def test_two_partitions_on_a_cluster_give_the_alerts_of_one_worker(tmp_path: Pat
     assert len(homes) == 2, "the fixture's slot ranges put the two partitions on two masters"
 
     assert main(["push", str(rec), "--redis", cluster_url, "--config", str(cfg_file), "--json"]) == 0
-    env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    procs = [subprocess.Popen([sys.executable, "-m", "alerter.cli", "run", "--until-drained", "--redis", cluster_url,
-                               "--config", str(cfg_file), "--partitions", str(p), "--consumer", f"w{p}", "--json"],
-                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env) for p in (0, 1)]
-    for proc in procs:
-        out, err = proc.communicate(timeout=300)
-        assert proc.returncode == 0, err.decode()[-2000:]
-        assert json.loads(out)["hours"] == 240
-    alerts = [_outbox(st, p, b"alert", b"alert") for p in (0, 1)]
+    assert [run["hours"] for run in run_workers(cluster_url, cfg_file)] == [240, 240]
+    alerts = [outbox_of(st, p, b"alert", b"alert") for p in (0, 1)]
     assert sorted(alerts[0] + alerts[1]) == sorted(dumps(a) for a in one.alerts)
     assert not alerts[0] and alerts[1]  # '/hot', the surging node, belongs to partition 1
-    assert _outbox(st, 0, b"incident", b"incident") == [dumps(u) for u in one.incidents] != []
+    assert outbox_of(st, 0, b"incident", b"incident") == [dumps(u) for u in one.incidents] != []
     assert st.pending_count("alerter:{p0}:in", "alerter-service") == 0
     assert st.pending_count("alerter:{p1}:in", "alerter-service") == 0
     per_master = {node.name: client.keys(target_nodes=node) for node in client.get_primaries()}

@@ -35,7 +35,7 @@ from alerter.timeaxis import format_hour
 from alerter.wire import decode_entry, encode_count, partition_of
 
 from .conftest_redis import redis_url, store  # noqa: F401 - fixtures
-from .helpers import START, daily_counts, small_recording, write_recording
+from .helpers import START, daily_counts, outbox_of, run_workers, small_recording, write_recording
 
 IN, OUT, DEAD, LATE, CKPT = ("alerter:{p0}:in", "alerter:{p0}:outbox", "alerter:{p0}:dead", "alerter:{p0}:late",
                              "alerter:{p0}:checkpoint")
@@ -248,10 +248,6 @@ incidents:
 """
 
 
-def _outbox(st_: Store, partition: int, kind: bytes, field: bytes) -> list[str]:
-    return [f[field].decode() for _, f in st_.entries(f"alerter:{{p{partition}}}:outbox") if f[b"type"] == kind]
-
-
 @pytest.mark.skipif(not DEMO_RECORDING.exists(), reason="demo recording not generated yet")
 def test_two_workers_on_the_demo_week_give_the_records_of_one(tmp_path: Path, store: Store, redis_url: str) -> None:  # noqa: F811
     """The demo week on two partitions, two worker processes: the union of the outboxes' alert
@@ -276,20 +272,14 @@ def test_two_workers_on_the_demo_week_give_the_records_of_one(tmp_path: Path, st
     assert mixed, "some incidents must group alerts of both partitions"
 
     assert main(["push", str(DEMO_RECORDING), "--redis", redis_url, "--config", str(cfg_file), "--json"]) == 0
-    env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    procs = [subprocess.Popen([sys.executable, "-m", "alerter.cli", "run", "--until-drained", "--redis", redis_url,
-                               "--config", str(cfg_file), "--partitions", str(p), "--consumer", f"w{p}", "--json"],
-                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env) for p in (0, 1)]
-    for proc in procs:
-        _, err = proc.communicate(timeout=300)
-        assert proc.returncode == 0, err.decode()[-2000:]
-    alerts = [_outbox(store, p, b"alert", b"alert") for p in (0, 1)]
+    run_workers(redis_url, cfg_file)
+    alerts = [outbox_of(store, p, b"alert", b"alert") for p in (0, 1)]
     assert alerts[0] and alerts[1]  # both workers alert on their own nodes
     assert sorted(alerts[0] + alerts[1]) == sorted(dumps(a) for a in one.alerts)
     assert all(partition_of(json.loads(line)["node"], 2) == p for p in (0, 1) for line in alerts[p])
-    assert _outbox(store, 0, b"incident", b"incident") == [dumps(u) for u in one.incidents]
-    assert _outbox(store, 0, b"spill", b"spill") == [dumps(w) for w in one.spills]
-    assert not _outbox(store, 1, b"incident", b"incident") and not _outbox(store, 1, b"spill", b"spill")
+    assert outbox_of(store, 0, b"incident", b"incident") == [dumps(u) for u in one.incidents]
+    assert outbox_of(store, 0, b"spill", b"spill") == [dumps(w) for w in one.spills]
+    assert not outbox_of(store, 1, b"incident", b"incident") and not outbox_of(store, 1, b"spill", b"spill")
 
 
 def test_running_service_claims_what_a_dead_consumer_left(tmp_path: Path, store: Store,  # noqa: F811
