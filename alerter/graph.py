@@ -39,7 +39,7 @@ _DIRECTIONS = ("up", "down")
 class CSRView:
     """Alive edges sorted by destination: in-edges of node ``v`` are ``indptr[v]:indptr[v+1]``."""
 
-    order: np.ndarray  # int64 slot indices, stable by dst
+    order: np.ndarray  # slot indices (int32 below 2**31 slots, else int64), stable by dst
     indptr: np.ndarray  # int64, n_nodes + 1
     src_sorted: np.ndarray  # int32
     dst_sorted: np.ndarray  # int32
@@ -314,7 +314,7 @@ class LinkGraph:
         hit = self._cache.get("main")
         if hit is None or hit[0] != self.generation:
             n = len(self.nodes)
-            order = np.arange(self.main, dtype=np.int64)
+            order = np.arange(self.main, dtype=np.int32 if len(self.src) < 2**31 else np.int64)
             indptr = np.searchsorted(self.dst[: self.main], np.arange(n + 1, dtype=np.int32)).astype(np.int64)
             _readonly(order, indptr)
             hit = self._cache["main"] = (self.generation, (order, indptr))
@@ -339,7 +339,9 @@ class LinkGraph:
         if self.n_slots > m or self.n_dead:
             drop, tail = self._pending()
             plan = _splice_plan(m, drop, np.searchsorted(dst, self.dst[tail], side="right"))
-            order, src, dst = _splice(plan, order, tail), _splice(plan, src, self.src[tail]), \
+            slot = np.int32 if len(self.src) < 2**31 else np.int64  # capacity may have grown past int32
+            order = order.astype(slot, copy=False)
+            order, src, dst = _splice(plan, order, tail.astype(slot)), _splice(plan, src, self.src[tail]), \
                 _splice(plan, dst, self.dst[tail])
             nodes = np.arange(len(indptr), dtype=np.int32)
             indptr = indptr - np.searchsorted(self.dst[drop], nodes) + np.searchsorted(self.dst[tail], nodes)
