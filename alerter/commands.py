@@ -122,7 +122,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
         out = report.console()
         out.rule(f"{len(messages)} chat message(s) for the demo week: one per incident, then its updates")
         for text in messages:
-            out.print(text, markup=False, highlight=False)
+            out.print(text, markup=False, highlight=False, soft_wrap=True)  # a long line stays one line
             out.print()
     return present(result, DEMO_RECORDING, args, config, DEMO_LABELS, compare_own_only=True)
 
