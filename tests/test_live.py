@@ -282,13 +282,32 @@ def test_two_workers_on_the_demo_week_give_the_records_of_one(tmp_path: Path, st
     assert not outbox_of(store, 1, b"incident", b"incident") and not outbox_of(store, 1, b"spill", b"spill")
 
 
-def test_running_service_claims_what_a_dead_consumer_left(tmp_path: Path, store: Store,  # noqa: F811
+def _add_while_another_reads(st_: Store, fields: list[dict], consumer: str, count: int) -> list:
+    """One MULTI/EXEC: XADD the first ``count`` entries, ``consumer`` of the group reads them, XADD
+    the rest. A service blocked in XREADGROUP is served only after EXEC, so the other consumer
+    gets exactly those entries, whatever the timing."""
+    pipe = st_.client.pipeline(transaction=True)
+    for f in fields[:count]:
+        pipe.xadd(IN, f)
+    pipe.xreadgroup("alerter-service", consumer, {IN: ">"}, count=count)
+    for f in fields[count:]:
+        pipe.xadd(IN, f)
+    return list(pipe.execute()[count][0][1])
+
+
+def _wait_applied(svc: Service, st_: Store, deadline: float) -> None:
+    while svc.state.applied_id != st_.entries(IN)[-1][0] and time.monotonic() < deadline:
+        time.sleep(0.02)
+
+
+def test_running_service_claims_what_dead_consumers_left(tmp_path: Path, store: Store,  # noqa: F811
                                                          caplog: pytest.LogCaptureFixture) -> None:
     """While a service runs, a second consumer of the group reads 20 entries in the middle of
-    the stream and dies without acknowledging them. The running service reads on past them,
-    holds what it read (stream order: edges and the applied-id skip rule depend on it),
-    claims them once they are idle ``live.claim_idle_seconds`` and ends with the replay's
-    alerts: none lost, none doubled, nothing left pending."""
+    the stream and dies without acknowledging them: the running service reads on past them,
+    holds what it read (stream order: edges and the applied-id skip rule depend on it) and
+    claims them once idle ``live.claim_idle_seconds``. Then a third one takes the stream's
+    last 5 entries and dies: the service, idle, finds them at its periodic claim. It ends
+    with the replay's alerts: none lost, none doubled, nothing left pending."""
     config = Config()
     config = config.model_copy(update={"live": config.live.model_copy(update={"claim_idle_seconds": 1.0})})
     rec = small_recording(tmp_path)
@@ -303,21 +322,14 @@ def test_running_service_claims_what_a_dead_consumer_left(tmp_path: Path, store:
     with caplog.at_level(logging.INFO, logger="alerter.service"):
         thread.start()
         try:
-            deadline = time.monotonic() + 60
-            while svc.state.applied_id != store.entries(IN)[-1][0] and time.monotonic() < deadline:
-                time.sleep(0.02)
+            deadline = time.monotonic() + 120
+            _wait_applied(svc, store, deadline)
             assert svc.phase.value == "running" and store.pending_count(IN, "alerter-service") == 0
-            # one transaction: the dead consumer reads the next 20 entries before the running
-            # service (blocked in XREADGROUP) is served the rest
-            pipe = store.client.pipeline(transaction=True)
-            for f in fields[first:first + 20]:
-                pipe.xadd(IN, f)
-            pipe.xreadgroup("alerter-service", "dead", {IN: ">"}, count=20)
-            for f in fields[first + 20:]:
-                pipe.xadd(IN, f)
-            stolen = pipe.execute()[20][0][1]
-            assert len(stolen) == 20 and store.pending_count(IN, "alerter-service") >= 20
-            while len(svc.summary.hours) < 240 and time.monotonic() < deadline + 60:
+            assert len(_add_while_another_reads(store, fields[first:-5], "dead", 20)) == 20
+            assert store.pending_count(IN, "alerter-service") >= 20
+            _wait_applied(svc, store, deadline)
+            assert len(_add_while_another_reads(store, fields[-5:], "dead2", 5)) == 5
+            while len(svc.summary.hours) < 240 and time.monotonic() < deadline:
                 time.sleep(0.05)
         finally:
             svc.stop()
@@ -326,6 +338,7 @@ def test_running_service_claims_what_a_dead_consumer_left(tmp_path: Path, store:
     keys = [f[b"key"] for _, f in store.entries(OUT)]
     assert len(keys) == len(set(keys)) and len(svc.summary.hours) == 240
     assert store.pending_count(IN, "alerter-service") == 0 and store.foreign_pending(IN, "alerter-service", "x") == []
-    assert svc.state.counters["claimed"] == 20 and svc.state.counters.get("late", 0) == 0
-    assert "for entries held by consumer=dead" in caplog.text and "claimed partition=0 entries=20" in caplog.text
-    assert "phase=running" in caplog.text
+    assert svc.state.counters["claimed"] == 25 and svc.state.counters.get("late", 0) == 0
+    assert "for entries held by consumer=dead " in caplog.text  # the service held back what it read past them
+    for n in (20, 5):  # no read returns the last 5: only the periodic claim brings them
+        assert f"claimed partition=0 entries={n} idle_s=1 phase=running" in caplog.text
