@@ -26,8 +26,8 @@ import os
 
 import numpy as np
 
-__all__ = ["AVAILABLE", "balanced_blocks", "direction", "forecast_runs", "gather_edges", "observe_runs", "scale",
-           "step", "threads"]
+__all__ = ["AVAILABLE", "balanced_blocks", "direction", "follow_slots", "forecast_runs", "gather_edges",
+           "observe_runs", "scale", "step", "threads"]
 
 try:
     if os.environ.get("ALERTER_FLOW_KERNEL", "") == "numpy":  # force the fallback (benchmarks, CI)
@@ -239,6 +239,19 @@ def gather_edges(keep, beta, cov, hours, new_beta, new_cov, new_hours, prior):  
             for c in range(cov.shape[1]):
                 new_cov[p, c] = 0
             new_hours[p] = 0
+
+
+@_pjit
+def follow_slots(order, position, born, keep, born_out):  # noqa: ANN001, ANN201
+    """Re-sync with the link graph in one parallel pass over the new CSR order (``order[p]``
+    is the graph slot at position ``p``, each slot once): ``keep[p]`` takes the slot's learner
+    position of the last sync (-1 for a new slot), the slot records ``p`` for the next one,
+    and ``born_out[p]`` the link's birth hour."""
+    for p in _prange(order.shape[0]):
+        s = order[p]
+        keep[p] = position[s]
+        position[s] = p
+        born_out[p] = born[s]
 
 
 @_pjit

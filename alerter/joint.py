@@ -23,6 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from . import flow_kernels
 from .config import AttributionSettings, FlowConfig
 from .flows import Attribution, FlowLearner, FlowSettings, LinkAges, match_edges, persistence_forecast
 from .graph import LinkGraph
@@ -106,16 +107,14 @@ class JointModel:
         if key == self._synced:
             return
         csr = self.graph.csr()
-        keep = self._kept(csr.order, csr.src_sorted, csr.dst_sorted, n)
+        keep, self.born = self._kept(csr.order, csr.src_sorted, csr.dst_sorted, n)
         self.learner.resize(n, csr.src_sorted, csr.dst_sorted, keep)
         self.indptr = np.asarray(csr.indptr, np.int64)
-        born = self.graph.born[csr.order]
-        small = born.size == 0 or (born.min() > -2**31 and born.max() < 2**31)
-        self.born = born.astype(np.int32) if small else born  # hour ticks fit int32: half the bytes
         self._synced = key  # type: ignore[assignment]
 
-    def _kept(self, order: np.ndarray, src: np.ndarray, dst: np.ndarray, n: int) -> np.ndarray:
-        """``keep[new position] = learner position of the same link at the last sync, or -1``.
+    def _kept(self, order: np.ndarray, src: np.ndarray, dst: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """``keep[new position] = learner position of the same link at the last sync, or -1``,
+        and the links' birth hours in the new order (int32 when they fit: half the bytes).
 
         The graph keeps each slot's learner position in a registered per-edge array (it
         follows the slots through compaction; new slots start at -1), so matching is one
@@ -128,13 +127,20 @@ class JointModel:
         if fresh:
             g.register(_POSITION, np.int32, fill=-1)
         pos = g.array(_POSITION)[0]
+        slots = g.born[: g.n_slots]
+        small = slots.size == 0 or (slots.min() > -2**31 and slots.max() < 2**31)
+        born = np.empty(order.shape[0], np.int32 if small else np.int64)
+        keep = np.empty(order.shape[0], np.int32)
+        if flow_kernels.AVAILABLE:  # one parallel pass
+            flow_kernels.follow_slots(order, pos, g.born, keep, born)
+        else:
+            keep[:] = pos[order]
+            pos[order] = np.arange(order.shape[0], dtype=np.int32)
+            born[:] = g.born[order]
         old = self.learner.state
         if fresh and old.src.size:
             keep = match_edges(old.src, old.dst, src, dst, max(n, 1))
-        else:
-            keep = pos[order]
-        pos[order] = np.arange(order.shape[0], dtype=np.int32)
-        return keep
+        return keep, born
 
     # -- per hour ----------------------------------------------------------------------
     def forecast(self, prev_excess: np.ndarray, tick: int) -> np.ndarray:
