@@ -563,11 +563,12 @@ class FlowLearner:
                 raise ValueError("src and dst are needed when keep introduces new edges")
             src, dst = st.src[keep], st.dst[keep]
         n_nodes = max(st.n_nodes, 1)
-        fresh = self._empty(0, index_array(src, n_nodes), index_array(dst, n_nodes)) if st.n_edges == 0 \
-            else self._gathered(keep, kept, index_array(src, n_nodes), index_array(dst, n_nodes))
-        st.beta, st.beta_avg, st.cov, st.edge_hours = fresh.beta, fresh.beta_avg, fresh.cov, fresh.edge_hours
-        st.src, st.dst = fresh.src, fresh.dst
+        src, dst = index_array(src, n_nodes), index_array(dst, n_nodes)
+        n_old = st.n_edges
+        st.src, st.dst = src, dst  # the old endpoints are not needed below: let them go before the gather
         self._buf, self._seg = {}, None
+        fresh = self._empty(0, src, dst) if n_old == 0 else self._gathered(keep, kept, src, dst)
+        st.beta, st.beta_avg, st.cov, st.edge_hours = fresh.beta, fresh.beta_avg, fresh.cov, fresh.edge_hours
 
     def _gathered(self, keep: np.ndarray, kept: np.ndarray, src: np.ndarray, dst: np.ndarray) -> FlowState:
         """The per-edge state at the new positions: one gather per array (new positions read
@@ -600,7 +601,7 @@ class FlowLearner:
         e, m = keep.shape[0], st.cov.shape[1] * st.cov.shape[2]
         beta, cov = np.empty((st.beta.shape[0], e), st.beta.dtype), np.empty((e, *st.cov.shape[1:]), st.cov.dtype)
         hours = np.empty(e, st.edge_hours.dtype)
-        old_cov = st.cov.reshape(st.n_edges, m)
+        old_cov = st.cov.reshape(st.cov.shape[0], m)  # st.src already holds the new edges
         flow_kernels.gather_edges(keep, st.beta, old_cov, st.edge_hours, beta, cov.reshape(e, m), hours, s.prior)
         beta_avg = beta
         if not s.forgetting:

@@ -107,6 +107,7 @@ class JointModel:
         if key == self._synced:
             return
         csr = self.graph.csr()
+        self.born = self.born[:0]  # freed before its successor is built (peak memory)
         keep, self.born = self._kept(csr.order, csr.src_sorted, csr.dst_sorted, n)
         self.learner.resize(n, csr.src_sorted, csr.dst_sorted, keep)
         self.indptr = np.asarray(csr.indptr, np.int64)
