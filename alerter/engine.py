@@ -23,9 +23,9 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
+from .attribution import Attribution
 from .baseline import SeasonalBaseline
 from .config import Config
-from .flows import Attribution
 from .incidents import Active, IncidentTracker, IncidentUpdate
 from .joint import JointModel
 from .nodes import NodeIndex

@@ -109,6 +109,8 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from . import flow_kernels
+from .attribution import Attribution, cap_contributions
+from .edge_runs import Segments, index_array, sum_by
 
 __all__ = [
     "Attribution",
@@ -127,66 +129,6 @@ _TINY = 1e-30
 
 KERNEL = "numba" if flow_kernels.AVAILABLE else "numpy"
 """Which implementation the default path's hour uses (see :mod:`alerter.flow_kernels`)."""
-
-
-def sum_by(index: np.ndarray, weights: np.ndarray, n: int) -> np.ndarray:
-    """``np.bincount`` with weights, always float64 (bincount returns int64 when empty)."""
-    return np.bincount(index, weights=weights, minlength=n).astype(np.float64, copy=False)
-
-
-def index_array(a: np.ndarray, n_nodes: int) -> np.ndarray:
-    """Node indices as int32 (int64 past 2**31 nodes); a read-only array of that type is shared.
-
-    Read-only (e.g. the graph's CSR views) means the caller cannot change it under the
-    learner, so no copy is needed; int32 halves the bytes every per-hour gather reads.
-    """
-    dt = np.int32 if n_nodes < 2**31 else np.int64
-    a = np.asarray(a)
-    if a.dtype == dt and a.ndim == 1 and not a.flags.writeable:
-        return a
-    return np.array(a, dtype=dt)
-
-
-class Segments:
-    """Per-destination sums and expansions over an edge list, fast when ``dst`` is sorted.
-
-    With a destination-sorted edge list (what the joint model passes: the graph's CSR) a
-    sum is one ``np.add.reduceat`` at the starts of the non-empty runs (reduceat yields
-    ``values[start]`` for an empty run, so those are masked) and a per-node value is spread
-    to the edges with ``np.repeat``; otherwise ``np.bincount`` and ``np.take`` are used.
-    """
-
-    def __init__(self, dst: np.ndarray, n: int) -> None:
-        self.dst, self.n = dst, n
-        self._blocks: np.ndarray | None = None
-        self.sorted = bool(dst.size == 0 or np.all(dst[1:] >= dst[:-1]))
-        if self.sorted:
-            indptr = np.searchsorted(dst, np.arange(n + 1))
-            self.indptr = indptr.astype(np.int64)
-            self.counts = np.diff(self.indptr)
-            self.nonempty = self.counts > 0
-            self.starts = self.indptr[:-1][self.nonempty]
-
-    def blocks(self) -> np.ndarray:
-        """Node boundaries of runs with about equal edge counts, for the parallel kernels."""
-        if self._blocks is None:
-            self._blocks = flow_kernels.balanced_blocks(self.indptr)
-        return self._blocks
-
-    def sum(self, values: np.ndarray) -> np.ndarray:
-        """Per node the sum of ``values`` over its in-edges, float64 (pairwise within a run)."""
-        if not self.sorted or values.size == 0:
-            return sum_by(self.dst, values, self.n)
-        out = np.zeros(self.n)
-        out[self.nonempty] = np.add.reduceat(values, self.starts)
-        return out
-
-    def expand(self, per_node: np.ndarray, dtype: np.dtype | type) -> np.ndarray:
-        """``per_node[dst]`` as a new array of ``dtype`` (one sequential ``np.repeat`` when sorted)."""
-        values = per_node.astype(dtype, copy=False)
-        if self.sorted:
-            return np.repeat(values, self.counts)
-        return np.take(values, self.dst, mode="clip")
 
 
 @dataclass(frozen=True)
@@ -327,54 +269,6 @@ class FlowState:
         return int(self.src.shape[0])
 
 
-class Attribution:
-    """Per-edge explanation of a seen hour, made with the coefficients before learning it.
-
-    Kept compact because it is made every hour over every edge: the signed per-edge
-    contributions ``raw`` (``c_e = sum_k beta[k, e] u_e(t-k)``) and, per node, the direction
-    looked at (``sign``: +1 surge, -1 drop, 0 none), the scale-down ``factor`` that keeps the
-    explained total within the node's excess, ``1 / |excess|`` and the totals. The capped
-    contributions (>= 0, per node total <= |excess|) and shares (per node sum <= 1) are
-    derived for the edges asked for; the full arrays on first access.
-    """
-
-    def __init__(self, raw: np.ndarray, dst: np.ndarray, sign: np.ndarray, factor: np.ndarray,
-                 inverse: np.ndarray, explained: np.ndarray, inflow: np.ndarray) -> None:
-        self.raw, self.dst = raw, dst
-        self.sign, self.factor, self.inverse = sign, factor, inverse
-        self.explained = explained  # (n,) per node sum of capped
-        self.inflow = inflow  # (n,) per node signed sum of raw
-        self._capped: np.ndarray | None = None
-
-    @classmethod
-    def from_parts(cls, raw: np.ndarray, dst: np.ndarray, excess: np.ndarray, sign: np.ndarray,
-                   part_sum: np.ndarray, inflow: np.ndarray) -> Attribution:
-        """From the per-node sums of the contributions pointing the way of ``sign``."""
-        n = excess.shape[0]
-        target = np.maximum(excess * sign, 0.0)
-        factor = np.divide(target, part_sum, out=np.ones(n), where=part_sum > target)
-        inverse = np.divide(1.0, target, out=np.zeros(n), where=target > 0)
-        return cls(raw, dst, sign, factor, inverse, part_sum * factor, inflow)
-
-    def capped_at(self, edges: slice | np.ndarray) -> np.ndarray:
-        """Capped contributions of the given edge positions (a slice or an index array)."""
-        d = self.dst[edges]
-        part = np.maximum(self.raw[edges] * self.sign[d].astype(self.raw.dtype), 0.0)
-        return part * self.factor[d].astype(self.raw.dtype)
-
-    @property
-    def capped(self) -> np.ndarray:
-        """(E,) >= 0: contributions toward each node's excess, per node total <= |excess|."""
-        if self._capped is None:
-            self._capped = self.capped_at(slice(None))
-        return self._capped
-
-    @property
-    def share(self) -> np.ndarray:
-        """(E,) capped / |excess of the destination|; per destination sum <= 1."""
-        return self.capped * self.inverse[self.dst].astype(self.raw.dtype)
-
-
 @dataclass(frozen=True)
 class LinkAges:
     """Link ages as birth hours plus the current hour, so no per-edge age array is made."""
@@ -433,25 +327,6 @@ def match_edges(old_src: np.ndarray, old_dst: np.ndarray, new_src: np.ndarray, n
     hit = old_key[order][pos] == new_key
     keep[hit] = order[pos[hit]]
     return keep
-
-
-def cap_contributions(raw: np.ndarray, dst: np.ndarray, excess: np.ndarray, n_nodes: int,
-                      direction: str = "auto") -> Attribution:
-    """Cap per-edge contributions so a node's explained total never exceeds its excess.
-
-    ``surge``: only positive contributions count, toward a positive excess; a node whose
-    excess is <= 0 gets 0. ``drop``: the mirror image with negative contributions and a
-    negative excess (capped values are reported as magnitudes). ``auto``: by the sign of
-    each node's excess. Where the sum exceeds ``|excess|`` the node's contributions are
-    scaled down proportionally; ``share = capped / |excess|`` sums to at most 1.
-    """
-    if direction not in ("auto", "surge", "drop"):
-        raise ValueError(f"direction must be 'auto', 'surge' or 'drop', got {direction!r}")
-    ex = np.nan_to_num(np.asarray(excess, dtype=float), nan=0.0)
-    sign = np.sign(ex) if direction == "auto" else np.full(n_nodes, 1.0 if direction == "surge" else -1.0)
-    raw = np.array(raw, dtype=float)
-    part = np.maximum(raw * sign[dst], 0.0)  # contributions pointing that way
-    return Attribution.from_parts(raw, dst, ex, sign, sum_by(dst, part, n_nodes), sum_by(dst, raw, n_nodes))
 
 
 # -- the learner -------------------------------------------------------------------------

@@ -24,8 +24,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import flow_kernels
+from .attribution import Attribution
 from .config import AttributionSettings, FlowConfig
-from .flows import Attribution, FlowLearner, FlowSettings, LinkAges, match_edges, persistence_forecast
+from .flows import FlowLearner, FlowSettings, LinkAges, match_edges, persistence_forecast
 from .graph import LinkGraph
 from .nodes import NodeIndex
 from .records import Upstream
