@@ -88,6 +88,15 @@ def _splice_plan(m: int, drop: np.ndarray, at: np.ndarray) -> Plan:
     return plan
 
 
+def _hours32(hour: int | np.ndarray) -> np.ndarray:
+    """Link birth hours (hour indices) as int32, the type the graph stores: half the bytes."""
+    h = np.asarray(hour, dtype=np.int64)
+    if h.size and (h.min() < -(2**31) or h.max() >= 2**31):
+        raise ValueError(f"link birth hour {int(h.min() if h.min() < 0 else h.max())} is outside the int32 range "
+                         "of hour indices (hours since 1970-01-01)")
+    return h.astype(np.int32)
+
+
 def _splice(plan: Plan, base: np.ndarray, new: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
     """Apply a splice plan along the last axis with one ``np.concatenate``."""
     pieces = [(base if from_base else new)[..., i:j] for from_base, i, j in plan]
@@ -139,9 +148,8 @@ class LinkGraph:
         self.dead_limit, self.dead_fraction = dead_limit, dead_fraction
         cap = max(int(capacity), 1)
         self.src, self.dst = np.zeros(cap, dtype=np.int32), np.zeros(cap, dtype=np.int32)
-        self.alive, self.born = np.zeros(cap, dtype=bool), np.zeros(cap, dtype=np.int64)
-        self.n_slots = self.main = self.n_dead = 0  # slots [0, main) are sorted by key
-        self.main_keys = np.zeros(0, dtype=np.int64)
+        self.alive, self.born = np.zeros(cap, dtype=bool), np.zeros(cap, dtype=np.int32)  # born: hour index
+        self.n_slots = self.main = self.n_dead = 0  # slots [0, main) are sorted by (dst, src)
         self.tail: dict[int, int] = {}  # key -> slot, alive tail edges only
         self.generation = 0  # bumped whenever slots are renumbered
         self.version = 0  # bumped on every change; caches compare against it
@@ -176,8 +184,8 @@ class LinkGraph:
         keys, perm, m = keys[first], perm[first], int(first.sum())
         g = cls(index, capacity=max(16, m + m // 8), **options)
         g.src[:m], g.dst[:m] = keys & 0xFFFFFFFF, keys >> _SHIFT
-        g.born[:m] = np.broadcast_to(np.asarray(hour, dtype=np.int64), src.shape)[perm]
-        g.alive[:m], g.n_slots, g.main, g.main_keys = True, m, m, keys
+        g.born[:m] = np.broadcast_to(_hours32(hour), src.shape)[perm]
+        g.alive[:m], g.n_slots, g.main = True, m, m
         return g
 
     def register(self, name: str, dtype: Any, fill: Any, rows: int = 1) -> None:
@@ -202,12 +210,15 @@ class LinkGraph:
 
     # -- edge events ----------------------------------------------------------------------
     def _find(self, s: int, d: int) -> int | None:
-        key = (d << 32) | s
-        slot = self.tail.get(key)
+        slot = self.tail.get((d << 32) | s)
         if slot is not None:
             return slot
-        i = int(np.searchsorted(self.main_keys, key))
-        if i < self.main and self.main_keys[i] == key and self.alive[i]:
+        indptr = self._main_raw()[1]  # the main segment: d's in-links contiguous, sources ascending
+        if d + 1 >= len(indptr):  # a node interned since: no main in-links
+            return None
+        lo, hi = int(indptr[d]), int(indptr[d + 1])
+        i = lo + int(np.searchsorted(self.src[lo:hi], s))
+        if i < hi and self.src[i] == s and self.alive[i]:
             return i
         return None
 
@@ -229,7 +240,7 @@ class LinkGraph:
         if self.n_slots == len(self.src):
             self._grow(max(16, len(self.src) + len(self.src) // 2))
         slot = self.n_slots
-        self.src[slot], self.dst[slot], self.alive[slot], self.born[slot] = s, d, True, hour
+        self.src[slot], self.dst[slot], self.alive[slot], self.born[slot] = s, d, True, _hours32(hour)
         for name, arr in self._arrays.items():
             arr[:, slot] = self._fills[name]
         self.tail[(d << 32) | s] = slot
@@ -291,7 +302,9 @@ class LinkGraph:
         tail_keys = _keys(self.src[tail], self.dst[tail])
         by_key = np.argsort(tail_keys)
         tail, tail_keys = tail[by_key], tail_keys[by_key]
-        plan = _splice_plan(self.main, drop, np.searchsorted(self.main_keys, tail_keys))
+        main_keys = _keys(self.src[: self.main], self.dst[: self.main])  # only while compacting
+        plan = _splice_plan(self.main, drop, np.searchsorted(main_keys, tail_keys))
+        del main_keys
         m, ns = self.main - drop.size + tail.size, self.n_slots
         for attr in ("src", "dst", "born"):
             old = getattr(self, attr)
@@ -301,7 +314,6 @@ class LinkGraph:
         for name, arr in self._arrays.items():
             arr[:, :m] = _splice(plan, arr[:, : self.main], arr[:, tail])
             arr[:, m:ns] = self._fills[name]
-        self.main_keys = _splice(plan, self.main_keys, tail_keys)
         self.alive[:m], self.alive[m:ns] = True, False
         self.n_slots = self.main = m
         self.tail, self.n_dead = {}, 0
@@ -311,6 +323,11 @@ class LinkGraph:
     # -- per-hour views -------------------------------------------------------------------
     def _main_index(self) -> tuple[np.ndarray, np.ndarray]:
         """Identity order and indptr of the main segment (dead slots included), per generation."""
+        order, indptr = self._main_raw()
+        return order, _extend_indptr(indptr, len(self.nodes))
+
+    def _main_raw(self) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`_main_index` with the indptr as built (nodes interned since are not in it)."""
         hit = self._cache.get("main")
         if hit is None or hit[0] != self.generation:
             n = len(self.nodes)
@@ -318,8 +335,7 @@ class LinkGraph:
             indptr = np.searchsorted(self.dst[: self.main], np.arange(n + 1, dtype=np.int32)).astype(np.int64)
             _readonly(order, indptr)
             hit = self._cache["main"] = (self.generation, (order, indptr))
-        order, indptr = hit[1]
-        return order, _extend_indptr(indptr, len(self.nodes))
+        return hit[1]
 
     def csr(self) -> CSRView:
         """Destination-sorted CSR of the alive edges, cached until the next change."""

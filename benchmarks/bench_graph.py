@@ -65,7 +65,7 @@ def naive_csr(src: np.ndarray, dst: np.ndarray, alive: np.ndarray, ns: int, n: i
 
 
 def edge_bytes(g: LinkGraph) -> int:
-    arrays = [g.src, g.dst, g.alive, g.born, g.main_keys] + [g.array("coef")]
+    arrays = [g.src, g.dst, g.alive, g.born] + [g.array("coef")]
     return sum(a.nbytes for a in arrays)
 
 
