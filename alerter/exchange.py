@@ -33,10 +33,10 @@ from .config import CapacityRule
 from .engine import Engine, Foreign, StepResult
 from .incidents import Incident
 from .nodes import NodeIndex
-from .records import Alert, SpillWarning, Upstream, dumps
+from .records import Alert, SpillWarning, alert_from_dict, dumps
 from .wire import pack_ids, pack_table, partition_of, table_ids, unpack_ids, unpack_table
 
-__all__ = ["PartitionView", "After", "Candidate", "merge_alerts", "spill_warnings", "alert_from_dict",
+__all__ = ["PartitionView", "After", "Candidate", "merge_alerts", "spill_warnings",
            "PHASES", "OWN", "TOTALS", "AFTER"]
 
 OWN, TOTALS, AFTER = "own", "totals", "after"
@@ -221,19 +221,6 @@ class After:
         return cls([alert_from_dict(json.loads(a)) for a in data["alerts"]],
                    [(n, d) for n, d in data["active"]],
                    [Candidate(n, float(v), float(c), tuple(u)) for n, v, c, u in data["candidates"]])
-
-
-def alert_from_dict(data: dict) -> Alert:
-    """An :class:`Alert` back from its ``to_dict`` form (the JSON of ``records.dumps``).
-
-    >>> a = Alert.build(node="/x", hour="2026-11-20T10:00:00Z", kind="surge", observed=9, expected=1,
-    ...                 band_low=0, band_high=2, score=5, rule="r", streak=1, upstream=(Upstream("/", 7, 0.9),))
-    >>> alert_from_dict(json.loads(dumps(a))) == a
-    True
-    """
-    fields = dict(data)
-    fields["upstream"] = tuple(Upstream(**u) for u in fields.get("upstream", ()))
-    return Alert(**fields)
 
 
 def merge_alerts(afters: Iterable[After]) -> list[Alert]:

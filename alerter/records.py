@@ -13,7 +13,7 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
-__all__ = ["Alert", "NodeHour", "SpillWarning", "Upstream", "dumps", "write_jsonl"]
+__all__ = ["Alert", "NodeHour", "SpillWarning", "Upstream", "alert_from_dict", "dumps", "write_jsonl"]
 
 
 def _r(value: float, digits: int = 3) -> float:
@@ -119,6 +119,20 @@ def dumps(record: Any) -> str:
     """One JSON Lines row, keys sorted, no spaces: stable bytes for stable replays."""
     data = record.to_dict() if hasattr(record, "to_dict") else record
     return json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+
+
+def alert_from_dict(data: dict[str, Any]) -> Alert:
+    """An :class:`Alert` back from its ``to_dict`` form (the JSON of :func:`dumps`), for
+    readers of the outbox and of the partitions' exchange.
+
+    >>> a = Alert.build(node="/x", hour="2026-11-20T10:00:00Z", kind="surge", observed=9, expected=1,
+    ...                 band_low=0, band_high=2, score=5, rule="r", streak=1, upstream=(Upstream("/", 7, 0.9),))
+    >>> alert_from_dict(json.loads(dumps(a))) == a
+    True
+    """
+    fields = dict(data)
+    fields["upstream"] = tuple(Upstream(**u) for u in fields.get("upstream", ()))
+    return Alert(**fields)
 
 
 def write_jsonl(path: str | os.PathLike[str], records: Iterable[Any]) -> int:
