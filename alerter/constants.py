@@ -128,7 +128,8 @@ SINK_DEAD_STREAM = "alerter:{p#}:sink-dead"
 # (count, hours, states, top nodes), so a fold survives a restart of the delivery loop.
 FOLD_KEY = "alerter:{p#}:fold:%"
 
-# Hash per partition, sink and UTC day (``@``) of suppression counters for the digest.
+# Hash per partition, sink and UTC hour (``@``, e.g. 2026112012) of suppression counters
+# for the digest.
 SINK_STATS_KEY = "alerter:{p#}:sinkstats:%:@"
 
 # Placeholder for the sink name in the delivery key templates above.

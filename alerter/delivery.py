@@ -55,7 +55,7 @@ from .sinks import Outgoing, Sent, Sink, build_sink
 from .store import id_key
 
 __all__ = ["TokenBucket", "backoff_seconds", "retry_wait", "severity_of", "in_quiet_hours", "pick_route",
-           "SinkWorker", "run_delivery", "sink_keys", "alert_from_json", "options_of"]
+           "SinkWorker", "run_delivery", "sink_keys", "stats_bucket", "alert_from_json", "options_of"]
 
 log = logging.getLogger(__name__)
 # Defined here, next to its only use (constants.py belongs to the live path): per sink and
@@ -66,6 +66,16 @@ FIGURE_TYPES = ("suppressed",)
 SEVERITY_RANK = {"low": 0, "medium": 1, "high": 2}
 # Incident roots remembered to route spill-over notes like their incident (a bound on memory).
 ROOTS_KEPT = 10000
+
+
+def stats_bucket(when: datetime) -> str:
+    """The UTC hour a held-back message is counted in (``@`` of the stats key): per hour, so
+    the digest's 24 hours sum 24 or 25 buckets, not two whole days.
+
+    >>> stats_bucket(datetime(2026, 11, 20, 12, 30, tzinfo=UTC))
+    '2026112012'
+    """
+    return when.astimezone(UTC).strftime("%Y%m%d%H")
 
 
 def alert_from_json(text: str | bytes) -> Alert:
@@ -97,7 +107,7 @@ class SinkKeys:
     inflight: str
     fold: str
     dead: str
-    stats: str  # still has '@' for the UTC day
+    stats: str  # still has '@' for the UTC hour (:func:`stats_bucket`)
     message_ids: str  # thread -> the endpoint's message id, for edits/replies (``updates``)
 
 
@@ -451,8 +461,7 @@ class SinkWorker:
         self.count(outcome)
 
     def _stat(self, why: str) -> None:
-        day = datetime.fromtimestamp(self.clock(), UTC).strftime("%Y%m%d")
-        key = self.keys.stats.replace("@", day)
+        key = self.keys.stats.replace("@", stats_bucket(datetime.fromtimestamp(self.clock(), UTC)))
         self.redis.txn("HINCRBY stats", lambda p: (p.hincrby(key, why, 1), p.expire(key, 3 * 86400)))
 
     # -- folding over the rate limit ------------------------------------------------------

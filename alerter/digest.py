@@ -8,7 +8,8 @@ with APScheduler at ``sinks.digest.local_time`` in ``clock.timezone``.
 Suppressions come from two places: the service writes one ``type=suppressed`` outbox entry
 per closed hour in which the rules held alerts back by cooldown (fields ``surge`` and
 ``drop``), counted here as ``cooldown``; delivery counts what it held back itself (rate
-limit, quiet hours, severity, no route) in the per-sink daily stats hash.
+limit, quiet hours, severity, no route) in per-sink stats hashes, one per UTC hour, so
+the digest's 24 hours add up only the hours they overlap.
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from .config import Config
-from .delivery import SinkWorker, options_of, sink_keys
+from .delivery import SinkWorker, options_of, sink_keys, stats_bucket
 from .messages import render_digest_text
 from .sinks import Outgoing
 
@@ -59,6 +60,22 @@ def summarise(entries: Iterable[tuple[bytes, dict[bytes, bytes]]], top: int) -> 
     return DigestFigures(len(last_state), states, ranked, {"cooldown": cooldown} if cooldown else {})
 
 
+def _hours_between(since: datetime, now: datetime) -> list[datetime]:
+    """The UTC hours whose stats buckets overlap ``[since, now]`` (24 or 25 of them).
+
+    >>> [h.hour for h in _hours_between(datetime(2026, 11, 20, 22, 30, tzinfo=UTC),
+    ...                                  datetime(2026, 11, 21, 1, 0, tzinfo=UTC))]
+    [1, 0, 23, 22]
+    """
+    hour = now.astimezone(UTC).replace(minute=0, second=0, microsecond=0)
+    first = since.astimezone(UTC).replace(minute=0, second=0, microsecond=0)
+    out = []
+    while hour >= first:
+        out.append(hour)
+        hour -= timedelta(hours=1)
+    return out
+
+
 def post_digest(config: Config, store: Any, now: datetime | None = None, partition: int = 0) -> dict[str, str]:
     """Send the digest of the 24 hours before ``now`` to the digest sinks; outcome per sink."""
     now = now or datetime.now(UTC)
@@ -74,8 +91,8 @@ def post_digest(config: Config, store: Any, now: datetime | None = None, partiti
         if not target.enabled or (names and target.name not in names) or (not names and target.kind != "webhook"):
             continue
         worker = SinkWorker(config, target, store, partition=partition)
-        for day in (now, since):
-            stats = store.hash_all(worker.keys.stats.replace("@", day.strftime("%Y%m%d")))
+        for bucket in _hours_between(since, now):
+            stats = store.hash_all(worker.keys.stats.replace("@", stats_bucket(bucket)))
             for k, v in stats.items():
                 figures.suppressed[k.decode()] = figures.suppressed.get(k.decode(), 0) + int(v)
         text = render_digest_text(since.strftime("%Y-%m-%dT%H:%M:%SZ"), now.strftime("%Y-%m-%dT%H:%M:%SZ"),

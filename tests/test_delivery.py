@@ -10,7 +10,15 @@ from pathlib import Path
 import pytest
 
 from alerter.config import Config, QuietHours, SinkRoute, SinkSettings, SinkTarget
-from alerter.delivery import SinkWorker, TokenBucket, backoff_seconds, in_quiet_hours, pick_route, sink_keys
+from alerter.delivery import (
+    SinkWorker,
+    TokenBucket,
+    backoff_seconds,
+    in_quiet_hours,
+    pick_route,
+    sink_keys,
+    stats_bucket,
+)
 from alerter.store import Store
 
 from .conftest_redis import redis_url, store  # noqa: F401 - fixtures
@@ -121,7 +129,7 @@ def test_routing_severity_and_quiet_hours_hold_back_and_count(store: Store, hook
     paths = {p["headers"]["idempotency-key"]: p["path"] for p in hook.posts}
     assert paths == {"incident|s|1": "/shop/SECRET-TOKEN", "incident|n|1": "/hook/SECRET-TOKEN"}
     assert counters["no_route"] == 1 and counters["quiet_hours"] == 1  # /misc: no route; q: medium in quiet
-    stats = store.client.hgetall(sink_keys(cfg, "chat").stats.replace("@", "20261120"))
+    stats = store.client.hgetall(sink_keys(cfg, "chat").stats.replace("@", "2026112012"))  # the clock's UTC hour
     assert stats == {b"no_route": b"1", b"quiet_hours": b"1"}
 
 
@@ -154,7 +162,7 @@ def test_daily_digest_posts_once_per_day_and_schedules(store: Store, hook: Hook,
               [update("d1", 1, H1, ("/big",)), update("d1", 2, H2, ("/big",), "closed"), update("d2", 1, H2, ("/small",))])
     target = SinkTarget(name="chat", kind="webhook", url_env="TEST_HOOK_URL")
     cfg = Config(sinks=SinkSettings(targets=[target], digest=DigestSettings(enabled=True, local_time="08:30")))
-    store.client.hincrby(sink_keys(cfg, "chat").stats.replace("@", datetime.now(UTC).strftime("%Y%m%d")),
+    store.client.hincrby(sink_keys(cfg, "chat").stats.replace("@", stats_bucket(datetime.now(UTC))),
                          "rate_limit", 7)
     assert post_digest(cfg, store) == {"chat": "delivered"}
     assert post_digest(cfg, store) == {"chat": "already_delivered"}  # one digest per sink and day

@@ -19,7 +19,7 @@ from pathlib import Path
 import pytest
 
 from alerter.config import Config, DigestSettings, SinkSettings, SinkTarget, SinkUpdates
-from alerter.delivery import SinkWorker, sink_keys
+from alerter.delivery import SinkWorker, sink_keys, stats_bucket
 from alerter.digest import post_digest, summarise
 from alerter.records import SpillWarning
 from alerter.sinks import JsonlSink, build_sink
@@ -204,11 +204,16 @@ def test_digest_reports_cooldown_and_each_sinks_own_counts(store: Store, hook: H
     ops = SinkTarget(name="ops", kind="webhook", url_env="TEST_OPS_URL")
     cfg = Config(sinks=SinkSettings(targets=[chat, ops], digest=DigestSettings(enabled=True)))
     now = datetime.now(UTC)
-    store.client.hincrby(sink_keys(cfg, "chat").stats.replace("@", now.strftime("%Y%m%d")), "rate_limit", 7)
+    store.client.hincrby(sink_keys(cfg, "chat").stats.replace("@", stats_bucket(now)), "rate_limit", 7)
+    # counted before the window, on the UTC day it starts (when it does not start at 00:xx): not in this digest
+    since = now - timedelta(hours=24)
+    early = since - timedelta(hours=min(max(since.hour, 1), 6))
+    store.client.hincrby(sink_keys(cfg, "chat").stats.replace("@", stats_bucket(early)), "quiet_hours", 5)
     assert post_digest(cfg, store, now) == {"chat": "delivered", "ops": "delivered"}
     texts = {p["path"].split("/")[1]: p["body"]["text"] for p in hook.posts}
     assert "suppressed by cooldown: 9" in texts["hook"] and "suppressed by rate_limit: 7" in texts["hook"]
     assert "suppressed by cooldown: 9" in texts["ops"] and "rate_limit" not in texts["ops"]  # chat's own count
+    assert "quiet_hours" not in texts["hook"]  # outside the 24 hours (per-day buckets counted it)
     assert "1 incident(s) (1 open)" in texts["hook"]
 
 
@@ -364,7 +369,7 @@ def test_spill_notes_are_routed_like_their_incident(store: Store, hook: Hook,  #
     assert [(p["path"], p["headers"]["idempotency-key"]) for p in hook.posts] == [
         ("/shop/SECRET-TOKEN", "incident|inc-s|1"), ("/shop/SECRET-TOKEN", f"spill|inc-s|{H3}")]
     assert counters["below_severity"] == 2 and counters["no_route"] == 1
-    stats = store.hash_all(sink_keys(cfg, "chat").stats.replace("@", "20261120"))
+    stats = store.hash_all(sink_keys(cfg, "chat").stats.replace("@", "2026112012"))  # the clock's UTC hour
     assert stats == {b"below_severity": b"1", b"no_route": b"1"}  # one held note each, not one per entry
 
     push_hour(store, [], [], spills=[_spill("/cart", "inc-t", "/shop/b")], hour=H4)
