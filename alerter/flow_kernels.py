@@ -59,9 +59,12 @@ def _no_prefetch(arr, i):  # noqa: ANN001, ANN202 - plain Python: nothing to pre
 
 
 if numba is not None:
-    from llvmlite import ir
+    from llvmlite import binding, ir
     from numba.core import cgutils
     from numba.extending import intrinsic
+
+    # the intrinsic's mangled name: opaque pointers from LLVM 15 (llvmlite >= 0.44), typed before
+    _PREFETCH_NAME = "llvm.prefetch.p0" if binding.llvm_version_info >= (15,) else "llvm.prefetch.p0i8"
 
     @intrinsic
     def _prefetch(typingctx, arr, i):  # noqa: ANN001, ANN202, ARG001 - numba intrinsic signature
@@ -80,7 +83,7 @@ if numba is not None:
             byte_ptr = ir.IntType(8).as_pointer()
             i32 = ir.IntType(32)
             signature_ir = ir.FunctionType(ir.VoidType(), [byte_ptr, i32, i32, i32])
-            fn = cgutils.get_or_insert_function(builder.module, signature_ir, "llvm.prefetch.p0")
+            fn = cgutils.get_or_insert_function(builder.module, signature_ir, _PREFETCH_NAME)
             # read/write 1 (the totals are written), locality 3 (keep in all cache levels), data cache
             builder.call(fn, [builder.bitcast(ptr, byte_ptr), ir.Constant(i32, 1), ir.Constant(i32, 3),
                               ir.Constant(i32, 1)])
