@@ -257,7 +257,7 @@ class SinkWorker:
         title, text = render_spill_note(spill.incident, hour, mine, self.opts)
         msg = Outgoing(f"spill|{spill.incident}|{hour}", "spill", hour, title, text, spill.incident, 0, "spill",
                        spill.via, {"incident": spill.incident, "spills": [w.to_dict() for w in mine]},
-                       route.url_env if route else None)
+                       route.url_env)
         self.deliver(eid, msg)
 
     def _spill_route(self, eid: bytes, hour: str, key: str, spill: SpillWarning, mine: list[SpillWarning]

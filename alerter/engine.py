@@ -268,9 +268,7 @@ class Engine:
     def _spills(self, hour: datetime, tick: int) -> list[SpillWarning]:
         """Downstream nodes of open surge incidents whose next-hour forecast crosses capacity."""
         nxt = hour + HOUR
-        slot, day = local_slots(nxt, self.tz)
-        b_next = np.maximum(self.baseline.from_working(self.baseline.forecast(slot, day).astype(float)), 0.0)
-        load = b_next + self.joint.forecast(self.prev_excess, tick + 1)
+        load = self.next_load(hour)
         rules = self.config.incidents.capacity
         out = []
         for inc in self.incidents.open.values():
@@ -284,7 +282,6 @@ class Engine:
                         out.append(SpillWarning(node, format_hour(nxt), round(value, 1), cap, inc.id, member))
         unique = {(w.node, w.incident): w for w in out}
         return sorted(unique.values(), key=lambda w: (w.incident, w.node))
-
 
     # -- partitioned mode ----------------------------------------------------------------
     # What a worker of a partitioned run needs around ``step_array`` to publish its nodes'
@@ -310,10 +307,7 @@ class Engine:
     def next_load(self, hour: datetime) -> np.ndarray:
         """Per node the forecast load of the hour after ``hour`` (call after stepping ``hour``):
         the spill-over check's ``b_next + neighbour part``, for nodes whose links live here."""
-        nxt = hour + HOUR
-        slot, day = local_slots(nxt, self.tz)
-        b_next = np.maximum(self.baseline.from_working(self.baseline.forecast(slot, day).astype(float)), 0.0)
-        return b_next + self.joint.forecast(self.prev_excess, hour_index(hour) + 1)
+        return self.own_expected(hour + HOUR) + self.joint.forecast(self.prev_excess, hour_index(hour) + 1)
 
 
 class _Beyond:

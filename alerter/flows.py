@@ -430,11 +430,11 @@ class FlowLearner:
         if keep.shape != (n_new,):
             raise ValueError(f"keep must have shape ({n_new},), got {keep.shape}")
         st = self.state
-        if keep.size and (keep.max() >= st.n_edges or keep.min() < -1):
+        lowest = int(keep.min()) if keep.size else 0
+        if keep.size and (keep.max() >= st.n_edges or lowest < -1):
             raise ValueError(f"keep entries must be -1 or in [0, {st.n_edges})")
-        kept = keep >= 0
         if src is None or dst is None:
-            if not kept.all():
+            if lowest < 0:
                 raise ValueError("src and dst are needed when keep introduces new edges")
             src, dst = st.src[keep], st.dst[keep]
         n_nodes = max(st.n_nodes, 1)
@@ -442,16 +442,16 @@ class FlowLearner:
         n_old = st.n_edges
         st.src, st.dst = src, dst  # the old endpoints are not needed below: let them go before the gather
         self._buf, self._seg = {}, None
-        fresh = self._empty(0, src, dst) if n_old == 0 else self._gathered(keep, kept, src, dst)
+        fresh = self._empty(0, src, dst) if n_old == 0 else self._gathered(keep, src, dst)
         st.beta, st.beta_avg, st.cov, st.edge_hours = fresh.beta, fresh.beta_avg, fresh.cov, fresh.edge_hours
 
-    def _gathered(self, keep: np.ndarray, kept: np.ndarray, src: np.ndarray, dst: np.ndarray) -> FlowState:
+    def _gathered(self, keep: np.ndarray, src: np.ndarray, dst: np.ndarray) -> FlowState:
         """The per-edge state at the new positions: one gather per array (new positions read
         position 0, then are reset to the fresh values of :meth:`_empty`)."""
         st, s = self.state, self.settings
         if flow_kernels.AVAILABLE:
             return self._gathered_fused(keep, src, dst)
-        at, new = np.maximum(keep, 0), np.flatnonzero(~kept)
+        at, new = np.maximum(keep, 0), np.flatnonzero(keep < 0)
 
         def take(values: np.ndarray, axis: int) -> np.ndarray:
             out = np.take(values, at, axis=axis)

@@ -90,6 +90,8 @@ def _splice_plan(m: int, drop: np.ndarray, at: np.ndarray) -> Plan:
 
 def _hours32(hour: int | np.ndarray) -> np.ndarray:
     """Link birth hours (hour indices) as int32, the type the graph stores: half the bytes."""
+    if isinstance(hour, int) and -(2**31) <= hour < 2**31:  # one edge event: no array round trip
+        return np.int32(hour)  # type: ignore[return-value]
     h = np.asarray(hour, dtype=np.int64)
     if h.size and (h.min() < -(2**31) or h.max() >= 2**31):
         raise ValueError(f"link birth hour {int(h.min() if h.min() < 0 else h.max())} is outside the int32 range "

@@ -264,9 +264,8 @@ class IncidentTracker:
             pairs.update(beyond_at(tick))
             for node, direction in pairs:
                 inc = self._owner(node, direction)
-                member = inc.members.get(node) if inc is not None else None
-                if member is not None and inc is not None:
-                    member.last_active = tick
+                if inc is not None and node in inc.members:
+                    inc.members[node].last_active = tick
                     inc.last_active = tick
             return
         for inc in self.open.values():

@@ -116,7 +116,7 @@ class JointModel:
 
     def _kept(self, order: np.ndarray, src: np.ndarray, dst: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
         """``keep[new position] = learner position of the same link at the last sync, or -1``,
-        and the links' birth hours in the new order (int32 when they fit: half the bytes).
+        and the links' birth hours in the new order (the graph's dtype: int32).
 
         The graph keeps each slot's learner position in a registered per-edge array (it
         follows the slots through compaction; new slots start at -1), so matching is one
@@ -129,9 +129,7 @@ class JointModel:
         if fresh:
             g.register(_POSITION, np.int32, fill=-1)
         pos = g.array(_POSITION)[0]
-        slots = g.born[: g.n_slots]
-        small = slots.size == 0 or (slots.min() > -2**31 and slots.max() < 2**31)
-        born = np.empty(order.shape[0], np.int32 if small else np.int64)
+        born = np.empty(order.shape[0], g.born.dtype)  # int32 (int64 in graphs of older checkpoints)
         keep = np.empty(order.shape[0], np.int32)
         if flow_kernels.AVAILABLE:  # one parallel pass
             flow_kernels.follow_slots(order, pos, g.born, keep, born)
