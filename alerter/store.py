@@ -97,8 +97,8 @@ def _translated(what: str, where: str) -> Iterator[None]:
     except (redis.ConnectionError, redis.TimeoutError, redis.exceptions.ClusterDownError,
             redis.exceptions.SlotNotCoveredError) as exc:
         raise StoreUnavailableError(
-            f"Redis at {where} unreachable during {what}: {exc}; check that the server runs and the URL "
-            "(--redis or live.redis_url) and password variable (live.password_env) are right"
+            f"Redis at {where} unreachable during {what}: {str(exc).rstrip('.')}; check that the server runs and "
+            "the URL (--redis or live.redis_url) and password variable (live.password_env) are right"
         ) from exc
     except redis.AuthenticationError as exc:
         raise StoreUnavailableError(f"Redis at {where} refused the password during {what}: {exc}; "
