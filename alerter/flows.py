@@ -500,10 +500,11 @@ class FlowLearner:
         """``(n,)`` own-lag coefficients phi used for forecasts (zeros unless own_lag)."""
         return self.state.phi if self.settings.forgetting else self.state.phi_avg
 
-    def _get(self, name: str, shape: tuple[int, ...]) -> np.ndarray:
+    def _get(self, name: str, shape: tuple[int, ...], dtype: np.dtype | type | None = None) -> np.ndarray:
         buf = self._buf.get(name)
-        if buf is None or buf.shape != shape:
-            buf = np.empty(shape, self.dtype)
+        dtype = self.dtype if dtype is None else np.dtype(dtype)
+        if buf is None or buf.shape != shape or buf.dtype != dtype:
+            buf = np.empty(shape, dtype)
             self._buf[name] = buf
         return buf
 
@@ -592,7 +593,7 @@ class FlowLearner:
         if self._fused() and b_next is None:  # the joint model's forecast: excess through beta
             seg, out = self._segments(), np.zeros(n)
             flow_kernels.forecast_runs(seg.blocks(), seg.indptr, self.state.src, self.coefficients[0],
-                                       np.nan_to_num(eh, nan=0.0), out)
+                                       np.nan_to_num(eh, nan=0.0).astype(self.dtype), out)
             return out
         e0 = np.nan_to_num(eh, nan=0.0).astype(self.dtype)
         if self.settings.lags == 0 and not self.settings.own_lag:
@@ -875,7 +876,8 @@ class FlowLearner:
         raw = np.empty(st.n_edges, self.dtype)
         inflow, part_sum = np.zeros(n), np.zeros(n)
         totals = np.zeros((flow_kernels.threads(), n))
-        scratch = self._get("scratch", (flow_kernels.threads(), max(int(seg.counts.max(initial=0)), 1)))
+        scratch = self._get("scratch", (flow_kernels.threads(), 3, max(int(seg.counts.max(initial=0)), 1)),
+                            np.float64)
         pull = self._hour_table("pull") if s.prior_pull > 0 else np.zeros(1, self.dtype)
         flow_kernels.observe_runs(
             seg.blocks(), seg.indptr, st.src, np.stack([e, b0], axis=1), ok, sign, st.beta[0], st.cov.reshape(-1),

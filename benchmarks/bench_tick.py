@@ -10,7 +10,9 @@ baseline's methods. It prints peak memory (``ru_maxrss``, whole process includin
 build; and the peak over the timed ticks alone), an estimate of the bytes the per-edge
 flow step moves, a measured memory bandwidth (``np.copyto`` of a 1 GiB float32 array) and
 the ratio of the measured flow time to that bandwidth bound. Targets (PASS/MISS): full
-tick < 250 ms, peak memory < 2 GiB. A few extra ticks whose hours also add and remove links
+tick < 250 ms, peak memory < 2 GiB; as the 250 ms was set on another machine, a plain
+numpy edge step over the same links is timed too and the target scaled by its ratio to the
+issue's 115 ms for that step (both verdicts are printed). A few extra ticks whose hours also add and remove links
 (``--changes``) show what the learner's re-sync with the graph adds to such an hour.
 
 Run: ``.venv/bin/python benchmarks/bench_tick.py [--quick] [--ticks N] [--warm N]``.
@@ -241,11 +243,11 @@ def edge_passes(eng: Engine) -> list[tuple[str, int]]:
     """Bytes per edge of each pass over per-edge arrays in the default flow path, as implemented.
 
     Read from the learner's actual array dtypes. With numba: the fused kernels of
-    ``alerter.flow_kernels`` (``forecast_runs``, the two passes of ``observe_runs`` over
-    each destination's in-edges, ``scale`` when the cap binds); without: the numpy passes
-    of ``FlowLearner._observe_lag0``. Gathers of node arrays count the index read only (the
-    node arrays stay in cache); a second pass over a run counts its reads again, although
-    for all but the hubs they come from cache, so the bound is a generous one.
+    ``alerter.flow_kernels`` (``forecast_runs``, ``observe_runs``, ``scale`` when the cap
+    binds); without: the numpy passes of ``FlowLearner._observe_lag0``. Gathers of node
+    arrays count the index read only (the node arrays stay in cache); ``observe_runs`` reads
+    each destination's rows from memory once (its later loops over the run hit cache for
+    all but the hubs), so it counts each per-edge array once.
     """
     st, joint = eng.joint.learner.state, eng.joint
     f = st.beta.dtype.itemsize
@@ -253,10 +255,8 @@ def edge_passes(eng: Engine) -> list[tuple[str, int]]:
     if flows.KERNEL == "numba":
         return [
             ("forecast_runs: read src, beta", i_src + f),
-            ("observe_runs pass 1: read src, born, beta, hours; cov read+write; write raw",
-             i_src + born + f + h_e + 2 * f + f),
-            ("observe_runs pass 2: read src, born, cov; beta and hours read+write",
-             i_src + born + f + 2 * f + 2 * h_e),
+            ("observe_runs: read src, born; beta, cov, hours read+write; write raw",
+             i_src + born + 2 * f + 2 * f + 2 * h_e + f),
             ("scale (cap binds): read src; beta read+write", i_src + 2 * f),
         ]
     return [
@@ -278,6 +278,28 @@ def edge_passes(eng: Engine) -> list[tuple[str, int]]:
          + i_src + f + 3 * f),
         ("learn: edge_hours += 1", 2 * h_e),
     ]
+
+
+REFERENCE_STEP_MS = 115.0
+"""What the issue measured for a plain numpy edge step at this size on the machine where the
+250 ms target was set (its figure; the exact code it timed is not known here)."""
+
+
+def plain_numpy_step_ms(eng: Engine, repeat: int = 7) -> tuple[float, float]:
+    """(median, min) ms of a plain numpy edge step over the benchmark's own links: gather each
+    source's excess, multiply by the coefficient, sum per destination (``np.bincount``).
+
+    Our reading of the issue's reference step, timed on this machine so the tick can be set
+    against the target on a like-for-like machine speed.
+    """
+    st = eng.joint.learner.state
+    ehat = np.random.default_rng(1).random(st.n_nodes).astype(st.beta.dtype)
+    times = []
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        np.bincount(st.dst, st.beta[0] * ehat[st.src], minlength=st.n_nodes)
+        times.append((time.perf_counter() - t0) * 1e3)
+    return statistics.median(times), min(times)
 
 
 def verdict(ok: bool) -> str:
@@ -326,6 +348,7 @@ def main() -> None:
               f"with the graph {statistics.median(sync_ms):.1f} ms; peak memory now {peak_gib():.2f} GiB")
     passes = edge_passes(eng)
     edges = eng.joint.learner.state.n_edges
+    ref_med, ref_min = plain_numpy_step_ms(eng) if scale == 1 else (float("nan"), float("nan"))
     per_edge = sum(b for _, b in passes)
     del eng, data
     bw = bandwidth_gbs()
@@ -338,6 +361,13 @@ def main() -> None:
     print(f"memory bandwidth (np.copyto 1 GiB float32, read+write): {bw:.1f} GB/s -> bound "
           f"{bound_ms:.1f} ms; measured flow step (forecast + observe) {fc + ob:.1f} ms = "
           f"{(fc + ob) / bound_ms:.2f}x the bound")
+    if scale == 1:
+        speed = ref_med / REFERENCE_STEP_MS
+        scaled = TARGET_TICK_MS * speed
+        print(f"machine speed: plain numpy edge step (bincount(dst, beta * ehat[src]), float32, "
+              f"{edges:,} links) median {ref_med:.1f} ms (min {ref_min:.1f}) here vs ~{REFERENCE_STEP_MS:g} ms "
+              f"where the target was set -> {speed:.2f}x slower; full tick = {tick / ref_med:.2f}x that step; "
+              f"target scaled to this machine {scaled:.0f} ms  [scaled target: {verdict(tick < scaled)}]")
 
 
 if __name__ == "__main__":
