@@ -26,6 +26,7 @@ import numpy as np
 from .attribution import Attribution
 from .baseline import SeasonalBaseline
 from .config import Config
+from .flows import OLD_AFTER_TAUS
 from .incidents import Active, IncidentTracker, IncidentUpdate
 from .joint import JointModel
 from .nodes import NodeIndex
@@ -122,7 +123,7 @@ class Engine:
         tick = self._tick_for(ts)
         learning = dst in self.nodes and self.nodes.get(dst) < self.baseline.state.n \
             and self.baseline.state.seen[self.nodes.get(dst)] > 0
-        born = tick if learning else tick - int(20 * self.config.flows.age_tau_hours)
+        born = tick if learning else tick - int(np.ceil(OLD_AFTER_TAUS * self.config.flows.age_tau_hours))
         self.joint.add_edge(src, dst, born)
         self._grow()
 

@@ -157,13 +157,13 @@ def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, 
     when gathered through ``src``. Per edge into node ``i``: input ``u = e[j] + exp(-age /
     tau) * b[j]`` (``age = a0 + a1 * ages[e]``, so link birth hours and explicit ages both
     fit; ``inv_tau = 0``: no age weight; a non-empty ``age_table`` holds the weight per whole
-    hour of age, 0 past its end), contribution ``raw = beta u`` before learning, and its part
-    pointing the way of ``sign[i]`` summed into ``part_sum[i]`` for the attribution cap. Then,
-    when ``ok[i]``, the diagonal-RLS normalised step: running input variance ``cov``, direction
-    ``v = u / (cov (1 + ridge))``, gain ``step * err / max(mean quad, step * quad)``, the pull
-    toward the prior, the edge's observed hours; for every edge the clip to ``[lo, hi]`` and
-    the positive coefficients summed per source into ``totals[thread]`` for the conservation
-    cap.
+    hour of age, its last entry that of all older ages), contribution ``raw = beta u`` before
+    learning, and its part pointing the way of ``sign[i]`` summed into ``part_sum[i]`` for the
+    attribution cap. Then, when ``ok[i]``, the diagonal-RLS normalised step: running input
+    variance ``cov``, direction ``v = u / (cov (1 + ridge))``, gain ``step * err / max(mean
+    quad, step * quad)``, the pull toward the prior, the edge's observed hours; for every edge
+    the clip to ``[lo, hi]`` and the positive coefficients summed per source into
+    ``totals[thread]`` for the conservation cap.
 
     ``scratch[thread]`` holds three float64 rows as long as the largest in-degree: the run's
     gathered inputs are copied there first, so every later step is a loop over contiguous
@@ -226,14 +226,12 @@ def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, 
 
 @_jit_vec
 def _novelty_rows(ages, a0, a1, inv_tau, table, n_table, out):  # noqa: ANN001, ANN202
-    """``out[q] = exp(-max(age, 0) / tau)`` of each edge of a run: from ``table`` for
-    whole-hour ages (0 past its end) when it is non-empty, else computed."""
+    """``out[q] = exp(-max(age, 0) / tau)`` of each edge of a run: from ``table`` by whole
+    hours of age when it is non-empty (its last entry serves all older ages), else computed."""
     if n_table > 0:
         last = n_table - 1
         for q in range(ages.shape[0]):
-            k = np.int64(max(a0 + a1 * np.float64(ages[q]), 0.0))
-            w = table[min(k, last)]
-            out[q] = w if k < n_table else 0.0
+            out[q] = table[min(np.int64(max(a0 + a1 * np.float64(ages[q]), 0.0)), last)]
     else:
         for q in range(ages.shape[0]):
             out[q] = np.exp(-max(a0 + a1 * np.float64(ages[q]), 0.0) * inv_tau)

@@ -10,7 +10,8 @@ sources' inputs::
 ``x`` is the raw count, ``b`` the baseline's expected count (0 when the baseline is off) and
 ``a_e = 1 - exp(-age_hours / age_tau_hours)`` the link-age weight: a brand-new edge carries
 its source's whole traffic, an old one (whose normal inflow the destination's baseline has
-absorbed) only its source's excess. Everything is computed on the count scale.
+absorbed) only its source's excess; from :data:`OLD_AFTER_TAUS` time constants on (a
+weight under 2e-9) a link counts as old. Everything is computed on the count scale.
 
 Algorithm
 ---------
@@ -126,6 +127,9 @@ __all__ = [
 ]
 
 _TINY = 1e-30
+OLD_AFTER_TAUS = 20.0
+"""Link age, in ``age_tau_hours``, from which a link's novelty weight is 0 (exp(-20) = 2e-9
+of the source's baseline: nothing a count could show)."""
 
 KERNEL = "numba" if flow_kernels.AVAILABLE else "numpy"
 """Which implementation the default path's hour uses (see :mod:`alerter.flow_kernels`)."""
@@ -294,7 +298,8 @@ def age_weight(age_hours: np.ndarray | None, n_edges: int, settings: FlowSetting
                lag: int = 0, out: np.ndarray | None = None) -> np.ndarray:
     """``1 - a_e`` at ``lag`` hours back: the fraction of the source's baseline an edge carries.
 
-    ``exp(-max(age - lag, 0) / tau)``; all zeros when age weighting is off or ages are None.
+    ``exp(-max(age - lag, 0) / tau)``, 0 from :data:`OLD_AFTER_TAUS` time constants on; all
+    zeros when age weighting is off or ages are None.
     """
     dt = np.dtype(settings.dtype)
     if out is None:
@@ -305,6 +310,7 @@ def age_weight(age_hours: np.ndarray | None, n_edges: int, settings: FlowSetting
     np.subtract(age_hours, lag, out=out)
     np.maximum(out, 0.0, out=out)
     out *= -1.0 / settings.age_tau_hours
+    np.copyto(out, -np.inf, where=out <= -OLD_AFTER_TAUS)
     return np.exp(out, out=out)
 
 
@@ -846,13 +852,14 @@ class FlowLearner:
         return np.full(self.state.n_nodes, 1.0 if direction == "surge" else -1.0)
 
     def _novelty_table(self) -> np.ndarray:
-        """``exp(-h / tau)`` per whole hour of link age ``h``, up to where it underflows in the
-        learner's dtype (float32 near 104 tau, float64 near 745 tau; 0 beyond)."""
+        """``exp(-h / tau)`` per whole hour of link age ``h`` below :data:`OLD_AFTER_TAUS` tau,
+        then one 0 that stands for every older age (small enough to stay in L1 cache)."""
         table = self._tables.get("novelty")
         if table is None:
-            reach = 104.0 if self.dtype == np.float32 else 746.0
-            h = np.arange(int(reach * self.settings.age_tau_hours) + 1, dtype=np.float64)
-            table = self._tables["novelty"] = np.exp(-h / self.settings.age_tau_hours)
+            tau = self.settings.age_tau_hours
+            h = np.arange(int(np.ceil(OLD_AFTER_TAUS * tau)), dtype=np.float64)
+            weight = np.where(h / tau < OLD_AFTER_TAUS, np.exp(-h / tau), 0.0)
+            table = self._tables["novelty"] = np.concatenate([weight, [0.0]])
         return table
 
     def _fused(self) -> bool:
