@@ -8,6 +8,7 @@ edge changes plus the next ``csr()``, for a full compaction, and peak memory. Ru
 from __future__ import annotations
 
 import argparse
+import functools
 import resource
 import time
 from collections.abc import Callable
@@ -122,7 +123,7 @@ def main() -> None:
     print(f"naive full CSR rebuild (stable argsort + gathers + indptr): {t_full:8.1f} ms on these slots "
           f"(best of 3), {t_arr:8.1f} ms on slots in arrival order")
     for round_ in range(1, 6):  # the first rounds pay for first-touch page faults of new buffers
-        t_churn, _ = timed(lambda h=round_: churn(g, 1000, rng, hour=h))
+        t_churn, _ = timed(functools.partial(churn, g, 1000, rng, hour=round_))
         t_next, _ = timed(g.csr)
         print(f"round {round_}: 1,000 edge changes {t_churn:7.1f} ms; next csr() (splice of "
               f"{g.n_slots - g.main:,} tail / {g.n_dead:,} dead) {t_next:7.1f} ms; generation {g.generation}")
