@@ -40,13 +40,20 @@ class Segments:
     to the edges with ``np.repeat``; otherwise ``np.bincount`` and ``np.take`` are used.
     """
 
-    def __init__(self, dst: np.ndarray, n: int) -> None:
+    def __init__(self, dst: np.ndarray, n: int, indptr: np.ndarray | None = None) -> None:
+        """``indptr``: the run boundaries when the caller has them (the graph's CSR, whose
+        ``dst`` is sorted by construction); finding them costs a binary search per node
+        over all edges, which at 22 million links takes longer than an hour's learning pass."""
         self.dst, self.n = dst, n
         self._blocks: np.ndarray | None = None
-        self.sorted = bool(dst.size == 0 or np.all(dst[1:] >= dst[:-1]))
+        if indptr is not None:
+            indptr = np.asarray(indptr, np.int64)
+            if indptr.shape != (n + 1,) or indptr[0] != 0 or indptr[-1] != dst.size or np.any(np.diff(indptr) < 0):
+                raise ValueError(f"indptr must be a non-decreasing ({n + 1},) array from 0 to {dst.size} "
+                                 "(the CSR of the same edges)")
+        self.sorted = bool(indptr is not None or dst.size == 0 or np.all(dst[1:] >= dst[:-1]))
         if self.sorted:
-            indptr = np.searchsorted(dst, np.arange(n + 1))
-            self.indptr = indptr.astype(np.int64)
+            self.indptr = np.searchsorted(dst, np.arange(n + 1)).astype(np.int64) if indptr is None else indptr
             self.counts = np.diff(self.indptr)
             self.nonempty = self.counts > 0
             self.starts = self.indptr[:-1][self.nonempty]

@@ -388,12 +388,14 @@ class FlowLearner:
             phi_scale=np.zeros(n, dt), node_hours=np.zeros(n, np.int64), quad_mean=np.zeros(n, dt),
             hist_e=np.zeros((h, n), dt), hist_b=np.zeros((h, n), dt))
 
-    def resize(self, n_nodes: int, src: np.ndarray, dst: np.ndarray, keep: np.ndarray | None = None) -> None:
+    def resize(self, n_nodes: int, src: np.ndarray, dst: np.ndarray, keep: np.ndarray | None = None,
+               indptr: np.ndarray | None = None) -> None:
         """Set the node count (grow only) and the edge list.
 
         ``keep[new] = old edge position or -1`` (brand-new edge: prior, zero history); by
         default edges are matched on their ``(src, dst)`` pair. Node history is kept, so
-        lagged inputs of kept and new edges alike survive.
+        lagged inputs of kept and new edges alike survive. ``indptr``: the run boundaries of
+        a destination-sorted edge list (the graph's CSR), so they need not be searched for.
         """
         src, dst = index_array(src, n_nodes), index_array(dst, n_nodes)
         old = self.state
@@ -407,6 +409,8 @@ class FlowLearner:
             keep = match_edges(old.src, old.dst, src, dst, max(n_nodes, 1))
         self._grow_nodes(n_nodes)
         self.reindex(keep, src.shape[0], src, dst)
+        if indptr is not None:
+            self._seg = Segments(self.state.dst, n_nodes, indptr)
 
     def _grow_nodes(self, n: int) -> None:
         old = self.state

@@ -110,8 +110,8 @@ class JointModel:
         csr = self.graph.csr()
         self.born = self.born[:0]  # freed before its successor is built (peak memory)
         keep, self.born = self._kept(csr.order, csr.src_sorted, csr.dst_sorted, n)
-        self.learner.resize(n, csr.src_sorted, csr.dst_sorted, keep)
         self.indptr = np.asarray(csr.indptr, np.int64)
+        self.learner.resize(n, csr.src_sorted, csr.dst_sorted, keep, self.indptr)
         self._synced = key  # type: ignore[assignment]
 
     def _kept(self, order: np.ndarray, src: np.ndarray, dst: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:

@@ -6,8 +6,10 @@ from __future__ import annotations
 from datetime import timedelta
 
 import numpy as np
+import pytest
 
 from alerter.config import CapacityRule, Config, IncidentSettings, PartialDirectionRule, RuleOverride, RuleSettings
+from alerter.edge_runs import Segments
 from alerter.engine import Engine
 from alerter.timeaxis import parse_hour
 
@@ -160,6 +162,38 @@ def test_links_keep_their_coefficients_through_changes_and_a_re_added_link_start
     assert joint._position(eng.nodes.get("/side1"), eng.nodes.get("/child")) is None
     for s in ["/hub", *(f"/side{k}" for k in range(2, 6))]:
         assert coefficient(s, "/child") == learned[s], s
+
+
+def test_the_learner_takes_its_runs_from_the_graph_and_they_match_a_search() -> None:
+    """After a re-sync the learner's per-destination runs come from the graph's CSR instead
+    of a binary search per node; they must equal that search (``np.searchsorted`` over the
+    sorted destinations) and the learner's sums must equal ``np.bincount``. An indptr that
+    does not describe the edges is refused."""
+    eng = Engine(Config())
+    rng = np.random.default_rng(11)
+    for s, d in rng.integers(0, 40, size=(300, 2)).tolist():
+        if s != d:
+            eng.add_edge(f"/p{s}", f"/p{d}", T0)
+    eng.step(T0, {f"/p{k}": 10.0 + k for k in range(40)})
+    for s, d in rng.integers(0, 45, size=(30, 2)).tolist():  # new nodes and links, some removals
+        if s != d:
+            eng.add_edge(f"/p{s}", f"/p{d}", T0 + timedelta(hours=1))
+    csr = eng.graph.csr()
+    for p in (0, 7, 99):  # three links that exist
+        src, dst = eng.nodes.ids[int(csr.src_sorted[p])], eng.nodes.ids[int(csr.dst_sorted[p])]
+        assert eng.remove_edge(src, dst, T0 + timedelta(hours=1))
+    eng.step(T0 + timedelta(hours=1), {f"/p{k}": 10.0 + k for k in range(45)})
+    learner = eng.joint.learner
+    seg, dst = learner._segments(), learner.state.dst
+    assert dst.size == eng.graph.n_edges
+    n = learner.state.n_nodes
+    np.testing.assert_array_equal(seg.indptr, np.searchsorted(dst, np.arange(n + 1)))
+    values = rng.random(dst.size)
+    np.testing.assert_allclose(learner.sum_into_dst(values), np.bincount(dst, values, minlength=n), rtol=1e-12)
+    bad = seg.indptr.copy()
+    bad[-1] += 1
+    with pytest.raises(ValueError, match="indptr must be a non-decreasing"):
+        Segments(dst, n, bad)
 
 
 def test_incident_tracking_visits_only_nodes_beyond_their_band_with_the_same_result() -> None:
