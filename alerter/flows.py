@@ -319,6 +319,12 @@ def persistence_forecast(prev_excess: np.ndarray, decay: float = 0.5, horizon: i
     return np.nan_to_num(np.asarray(prev_excess, dtype=float), nan=0.0) * float(decay) ** horizon
 
 
+def _outside(a: np.ndarray, lo: int, hi: int) -> bool:
+    """Whether some entry of the non-empty integer array ``a`` lies outside ``[lo, hi)``."""
+    first, last = flow_kernels.value_range(a)
+    return first < lo or last >= hi
+
+
 def match_edges(old_src: np.ndarray, old_dst: np.ndarray, new_src: np.ndarray, new_dst: np.ndarray,
                 n_nodes: int) -> np.ndarray:
     """``keep[new] = position of the same (src, dst) among the old edges, or -1``."""
@@ -403,7 +409,7 @@ class FlowLearner:
             raise ValueError(f"n_nodes may only grow: {n_nodes} < {old.n_nodes}")
         if src.shape != dst.shape or src.ndim != 1:
             raise ValueError("src and dst must be 1-d arrays of equal length")
-        if src.size and (min(src.min(), dst.min()) < 0 or max(src.max(), dst.max()) >= n_nodes):
+        if src.size and _outside(src, 0, n_nodes) or dst.size and _outside(dst, 0, n_nodes):
             raise ValueError(f"edge endpoints must lie in [0, {n_nodes})")
         if keep is None:
             keep = match_edges(old.src, old.dst, src, dst, max(n_nodes, 1))
@@ -440,8 +446,8 @@ class FlowLearner:
         if keep.shape != (n_new,):
             raise ValueError(f"keep must have shape ({n_new},), got {keep.shape}")
         st = self.state
-        lowest = int(keep.min()) if keep.size else 0
-        if keep.size and (keep.max() >= st.n_edges or lowest < -1):
+        lowest, highest = flow_kernels.value_range(keep) if keep.size else (-1, -1)
+        if highest >= st.n_edges or lowest < -1:
             raise ValueError(f"keep entries must be -1 or in [0, {st.n_edges})")
         if src is None or dst is None:
             if lowest < 0:

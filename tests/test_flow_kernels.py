@@ -165,3 +165,27 @@ def test_regather_after_link_changes_equals_numpy(kw: dict, monkeypatch: pytest.
     new = keep < 0
     assert np.all(a.beta[0, new] == a.beta.dtype.type(fused.settings.prior)) and np.all(a.beta[1:, new] == 0)
     assert np.all(a.edge_hours[new] == 0) and np.all(a.edge_hours[~new] > 0)
+
+
+@pytest.mark.parametrize("dtype", [np.int32, np.int64])
+def test_value_range_is_numpys_min_and_max(dtype: type) -> None:
+    """The one-pass parallel range check equals ``ndarray.min`` / ``ndarray.max`` (numpy as
+    the reference), for negative values, a single entry and a long array split over threads."""
+    rng = np.random.default_rng(8)
+    for a in (rng.integers(-50, 50, 1), rng.integers(-(2**30), 2**30, 100_003), np.full(7, -1)):
+        a = a.astype(dtype)
+        assert flow_kernels.value_range(a) == (int(a.min()), int(a.max()))
+
+
+def test_out_of_range_endpoints_and_positions_are_refused() -> None:
+    """The re-sync's range checks (now one pass each) still refuse what they refused."""
+    fl = FlowLearner(FlowSettings())
+    fl.resize(N, SRC, DST)
+    bad = DST.copy()
+    bad[3] = N
+    with pytest.raises(ValueError, match=r"edge endpoints must lie in \[0, 40\)"):
+        fl.resize(N, SRC, bad)
+    with pytest.raises(ValueError, match="keep entries must be -1 or in"):
+        fl.reindex(np.full(SRC.size, SRC.size), SRC.size, SRC, DST)
+    fl.reindex(np.full(SRC.size, -1), SRC.size, SRC, DST)  # every link new: allowed
+    assert np.all(fl.state.edge_hours == 0)
