@@ -50,6 +50,13 @@ class Attribution:
         part = np.maximum(self.raw[edges] * self.sign[d].astype(self.raw.dtype), 0.0)
         return part * self.factor[d].astype(self.raw.dtype)
 
+    def capped_run(self, i: int, lo: int, hi: int) -> np.ndarray:
+        """:meth:`capped_at` of node ``i``'s own in-edges ``lo:hi`` (one destination: its sign
+        and factor are scalars, so no per-edge look-ups; the same float32 arithmetic)."""
+        dt = self.raw.dtype.type
+        part = np.maximum(self.raw[lo:hi] * dt(self.sign[i]), 0.0)
+        return part * dt(self.factor[i])
+
     @property
     def capped(self) -> np.ndarray:
         """(E,) >= 0: contributions toward each node's excess, per node total <= |excess|."""

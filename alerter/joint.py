@@ -175,16 +175,15 @@ class JointModel:
         """
         lo, hi = (int(self.indptr[i]), int(self.indptr[i + 1])) if i + 1 < len(self.indptr) else (0, 0)
         src = self.learner.state.src[lo:hi]
-        visits = attribution.capped_at(slice(lo, hi)).astype(float)
+        visits = attribution.capped_run(i, lo, hi).astype(float)
         if own_excess < 0:
             src, visits = self._with_removed(i, src, visits, b)
         target = abs(own_excess)
         total = float(visits.sum())
         if total > target > 0:
             visits = visits * (target / total)
-        order = np.lexsort((src, -visits))
         picked = []
-        for k in order[: self.attr.top].tolist():
+        for k in _top(visits, src, self.attr.top).tolist():
             share = visits[k] / target if target > 0 else 0.0
             if share < self.attr.min_share:
                 break
@@ -256,3 +255,14 @@ class JointModel:
             rows.append((h, other, via, share, age))
         rows.sort(key=lambda r: (r[0], -r[3] if r[3] == r[3] else 0.0, r[1]))
         return rows
+
+
+def _top(visits: np.ndarray, src: np.ndarray, k: int) -> np.ndarray:
+    """Positions of the ``k`` largest ``visits``, largest first, ties by ``src``: what a full
+    ``np.lexsort((src, -visits))[:k]`` gives, sorting only the entries that can be in it
+    (a hub has tens of thousands of in-links and an alert names a handful)."""
+    if visits.size > 4 * k > 0 and not np.isnan(visits).any():  # NaN would sort last in lexsort, not in partition
+        kth = np.partition(visits, visits.size - k)[visits.size - k]
+        cand = np.flatnonzero(visits >= kth)
+        return cand[np.lexsort((src[cand], -visits[cand]))][:k]
+    return np.lexsort((src, -visits))[:k]

@@ -228,3 +228,18 @@ def _last(eng: Engine, node: str, direction: str) -> int | None:
     """``Engine.last_beyond`` of one node as a plain function (no listing of who is beyond)."""
     t = int(eng.last_beyond[direction][eng.nodes.get(node)])
     return None if t == np.iinfo(np.int64).min else t
+
+
+def test_top_upstream_picks_equal_a_full_lexsort() -> None:
+    """The partial selection of the top upstream links equals the first ``k`` of a full
+    ``np.lexsort((src, -visits))`` (numpy as the reference), ties and NaN included."""
+    from alerter.joint import _top
+    rng = np.random.default_rng(12)
+    for size, k in ((5, 3), (200, 3), (10_000, 5), (1000, 1)):
+        for visits in (rng.random(size), np.round(rng.random(size) * 4), np.zeros(size)):
+            src = rng.permutation(size)
+            np.testing.assert_array_equal(_top(visits, src, k), np.lexsort((src, -visits))[:k])
+        visits = rng.random(size)
+        visits[rng.choice(size, min(size, 2), replace=False)] = np.nan
+        src = rng.permutation(size)
+        np.testing.assert_array_equal(_top(visits, src, k), np.lexsort((src, -visits))[:k])
