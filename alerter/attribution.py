@@ -44,15 +44,9 @@ class Attribution:
         inverse = np.divide(1.0, target, out=np.zeros(n), where=target > 0)
         return cls(raw, dst, sign, factor, inverse, part_sum * factor, inflow)
 
-    def capped_at(self, edges: slice | np.ndarray) -> np.ndarray:
-        """Capped contributions of the given edge positions (a slice or an index array)."""
-        d = self.dst[edges]
-        part = np.maximum(self.raw[edges] * self.sign[d].astype(self.raw.dtype), 0.0)
-        return part * self.factor[d].astype(self.raw.dtype)
-
     def capped_run(self, i: int, lo: int, hi: int) -> np.ndarray:
-        """:meth:`capped_at` of node ``i``'s own in-edges ``lo:hi`` (one destination: its sign
-        and factor are scalars, so no per-edge look-ups; the same float32 arithmetic)."""
+        """``capped[lo:hi]`` for node ``i``'s own in-edges ``lo:hi`` without the full array (one
+        destination: its sign and factor are scalars; the same float32 arithmetic)."""
         dt = self.raw.dtype.type
         part = np.maximum(self.raw[lo:hi] * dt(self.sign[i]), 0.0)
         return part * dt(self.factor[i])
@@ -61,7 +55,9 @@ class Attribution:
     def capped(self) -> np.ndarray:
         """(E,) >= 0: contributions toward each node's excess, per node total <= |excess|."""
         if self._capped is None:
-            self._capped = self.capped_at(slice(None))
+            dt = self.raw.dtype
+            part = np.maximum(self.raw * self.sign[self.dst].astype(dt), 0.0)
+            self._capped = part * self.factor[self.dst].astype(dt)
         return self._capped
 
     @property

@@ -409,7 +409,7 @@ class FlowLearner:
             raise ValueError(f"n_nodes may only grow: {n_nodes} < {old.n_nodes}")
         if src.shape != dst.shape or src.ndim != 1:
             raise ValueError("src and dst must be 1-d arrays of equal length")
-        if src.size and _outside(src, 0, n_nodes) or dst.size and _outside(dst, 0, n_nodes):
+        if src.size and (_outside(src, 0, n_nodes) or _outside(dst, 0, n_nodes)):  # equal shapes: checked above
             raise ValueError(f"edge endpoints must lie in [0, {n_nodes})")
         if keep is None:
             keep = match_edges(old.src, old.dst, src, dst, max(n_nodes, 1))
