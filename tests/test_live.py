@@ -295,8 +295,13 @@ def _add_while_another_reads(st_: Store, fields: list[dict], consumer: str, coun
     return list(pipe.execute()[count][0][1])
 
 
-def _wait_applied(svc: Service, st_: Store, deadline: float) -> None:
-    while svc.state.applied_id != st_.entries(IN)[-1][0] and time.monotonic() < deadline:
+def _wait_applied(svc: Service, st_: Store, deadline: float, acked: bool = False) -> None:
+    """Until the service has applied the stream's last entry and, with ``acked``, acknowledged all
+    it read: the applied id moves at ingest, the XACK only follows the next checkpoint commit."""
+    def done() -> bool:
+        return svc.state.applied_id == st_.entries(IN)[-1][0] and (
+            not acked or st_.pending_count(IN, "alerter-service") == 0)
+    while not done() and time.monotonic() < deadline:
         time.sleep(0.02)
 
 
@@ -323,7 +328,7 @@ def test_running_service_claims_what_dead_consumers_left(tmp_path: Path, store: 
         thread.start()
         try:
             deadline = time.monotonic() + 120
-            _wait_applied(svc, store, deadline)
+            _wait_applied(svc, store, deadline, acked=True)
             assert svc.phase.value == "running" and store.pending_count(IN, "alerter-service") == 0
             assert len(_add_while_another_reads(store, fields[first:-5], "dead", 20)) == 20
             assert store.pending_count(IN, "alerter-service") >= 20
