@@ -228,10 +228,10 @@ def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, 
 def _novelty_rows(ages, a0, a1, inv_tau, table, n_table, out):  # noqa: ANN001, ANN202
     """``out[q] = exp(-max(age, 0) / tau)`` of each edge of a run: from ``table`` by whole
     hours of age when it is non-empty (its last entry serves all older ages), else computed."""
-    if n_table > 0:
-        last = n_table - 1
+    if n_table > 0:  # clamped as a float, then truncated: a loop of SIMD conversions and gathers
+        last = np.float64(n_table - 1)
         for q in range(ages.shape[0]):
-            out[q] = table[min(np.int64(max(a0 + a1 * np.float64(ages[q]), 0.0)), last)]
+            out[q] = table[np.int64(min(max(a0 + a1 * np.float64(ages[q]), 0.0), last))]
     else:
         for q in range(ages.shape[0]):
             out[q] = np.exp(-max(a0 + a1 * np.float64(ages[q]), 0.0) * inv_tau)
