@@ -167,8 +167,9 @@ def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, 
 
     ``scratch[thread]`` holds three float64 rows as long as the largest in-degree: the run's
     gathered inputs are copied there first, so every later step is a loop over contiguous
-    rows that the compiler turns into SIMD code (gathers, table look-ups and the per-source
-    scatter stay scalar loops of their own).
+    rows that the compiler turns into SIMD code (the source gather and the per-source scatter
+    stay scalar loops of their own; table look-ups are loops of their own too, written so
+    that they vectorise: clamp as a float, then convert).
     """
     last_r = rate_table.shape[0] - 1
     last_p = pull_table.shape[0] - 1
