@@ -46,18 +46,16 @@ class Attribution:
 
     def capped_run(self, i: int, lo: int, hi: int) -> np.ndarray:
         """``capped[lo:hi]`` for node ``i``'s own in-edges ``lo:hi`` without the full array (one
-        destination: its sign and factor are scalars; the same float32 arithmetic)."""
+        destination: its sign and factor are scalars)."""
         dt = self.raw.dtype.type
-        part = np.maximum(self.raw[lo:hi] * dt(self.sign[i]), 0.0)
-        return part * dt(self.factor[i])
+        return _capped(self.raw[lo:hi], dt(self.sign[i]), dt(self.factor[i]))
 
     @property
     def capped(self) -> np.ndarray:
         """(E,) >= 0: contributions toward each node's excess, per node total <= |excess|."""
         if self._capped is None:
             dt = self.raw.dtype
-            part = np.maximum(self.raw * self.sign[self.dst].astype(dt), 0.0)
-            self._capped = part * self.factor[self.dst].astype(dt)
+            self._capped = _capped(self.raw, self.sign[self.dst].astype(dt), self.factor[self.dst].astype(dt))
         return self._capped
 
     @property
@@ -65,6 +63,12 @@ class Attribution:
         """(E,) capped / |excess of the destination|; per destination sum <= 1."""
         return self.capped * self.inverse[self.dst].astype(self.raw.dtype)
 
+
+
+def _capped(raw: np.ndarray, sign: np.ndarray | np.floating, factor: np.ndarray | np.floating) -> np.ndarray:
+    """The part of ``raw`` pointing the way of ``sign``, scaled by the cap ``factor`` (all in
+    ``raw``'s dtype, so one node's run and the full array give the same bits)."""
+    return np.maximum(raw * sign, 0.0) * factor
 
 def cap_contributions(raw: np.ndarray, dst: np.ndarray, excess: np.ndarray, n_nodes: int,
                       direction: str = "auto") -> Attribution:
