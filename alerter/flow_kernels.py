@@ -28,7 +28,7 @@ import os
 import numpy as np
 
 __all__ = ["AVAILABLE", "balanced_blocks", "direction", "follow_slots", "forecast_runs", "gather_edges",
-           "observe_runs", "scale", "step", "threads", "value_range"]
+           "observe_runs", "scale", "shift_runs", "step", "threads", "value_range"]
 
 try:
     if os.environ.get("ALERTER_FLOW_KERNEL", "") == "numpy":  # force the fallback (benchmarks, CI)
@@ -365,3 +365,38 @@ def step(v, gain, ok, src, dst, beta, hours, pull_table, prior, lo, hi, totals):
         beta[e] = b
         if beta[e] > 0:
             totals[src[e]] += np.float64(beta[e])
+
+
+# -- moving per-edge state in place after link changes (see alerter.edge_room) -------------
+@_jit
+def shift_runs(keep, max_runs):  # noqa: ANN001, ANN201
+    """Stretches of kept positions that shift by one displacement: ``runs[r] = (start, stop,
+    d)`` for new positions ``start:stop`` reading old ``start + d:stop + d``, the positions of
+    new links (``keep == -1``), and whether kept positions rise (False: order changed). A count
+    above ``max_runs`` means there were more stretches than that (the scan stopped)."""
+    runs = np.empty((max_runs, 3), np.int64)
+    fresh = np.empty(1024, np.int64)
+    n, n_runs, n_fresh, last, p = keep.shape[0], 0, 0, np.int64(-1), 0
+    while p < n:
+        q = np.int64(keep[p])
+        if q < 0:
+            if n_fresh == fresh.shape[0]:
+                grown = np.empty(2 * n_fresh, np.int64)
+                grown[:n_fresh] = fresh
+                fresh = grown
+            fresh[n_fresh] = p
+            n_fresh += 1
+            p += 1
+            continue
+        if q <= last:
+            return runs, n_runs, fresh, n_fresh, False
+        if n_runs == max_runs:
+            return runs, n_runs + 1, fresh, n_fresh, True
+        start, d = p, q - p
+        p += 1
+        while p < n and np.int64(keep[p]) == p + d:  # the stretch goes on (the hot loop)
+            p += 1
+        runs[n_runs, 0], runs[n_runs, 1], runs[n_runs, 2] = start, p, d
+        n_runs += 1
+        last = p - 1 + d
+    return runs, n_runs, fresh, n_fresh, True

@@ -109,7 +109,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from . import flow_kernels
+from . import edge_room, flow_kernels
 from .attribution import Attribution, cap_contributions
 from .edge_runs import Segments, index_array, sum_by
 
@@ -383,16 +383,21 @@ class FlowLearner:
 
     # -- shape ---------------------------------------------------------------------------
     def _empty(self, n: int, src: np.ndarray, dst: np.ndarray) -> FlowState:
+        """Fresh state: every edge at the prior, nothing observed. Per-edge arrays get spare
+        room (see :mod:`alerter.edge_room`) so later link changes can move them in place."""
         s, dt = self.settings, self.dtype
         k, e, h = s.lags + 1, int(src.shape[0]), s.history_hours
-        beta = np.zeros((k, e), dt)
+        beta, beta_avg = edge_room.allocate((k, e), dt, axis=1, fill=0.0), None
         beta[0] = s.prior
+        if not s.forgetting:
+            beta_avg = edge_room.allocate((k, e), dt, axis=1)
+            beta_avg[...] = beta
         return FlowState(
-            src=src, dst=dst, beta=beta, beta_avg=beta if s.forgetting else beta.copy(),
-            cov=np.zeros((e, s.block_size, s.block_size), dt),
-            edge_hours=np.zeros(e, np.int32), phi=np.zeros(n, dt), phi_avg=np.zeros(n, dt),
-            phi_scale=np.zeros(n, dt), node_hours=np.zeros(n, np.int64), quad_mean=np.zeros(n, dt),
-            hist_e=np.zeros((h, n), dt), hist_b=np.zeros((h, n), dt))
+            src=src, dst=dst, beta=beta, beta_avg=beta if beta_avg is None else beta_avg,
+            cov=edge_room.allocate((e, s.block_size, s.block_size), dt, axis=0, fill=0.0),
+            edge_hours=edge_room.allocate((e,), np.int32, axis=0, fill=0), phi=np.zeros(n, dt),
+            phi_avg=np.zeros(n, dt), phi_scale=np.zeros(n, dt), node_hours=np.zeros(n, np.int64),
+            quad_mean=np.zeros(n, dt), hist_e=np.zeros((h, n), dt), hist_b=np.zeros((h, n), dt))
 
     def resize(self, n_nodes: int, src: np.ndarray, dst: np.ndarray, keep: np.ndarray | None = None,
                indptr: np.ndarray | None = None) -> None:
@@ -422,7 +427,8 @@ class FlowLearner:
         old = self.state
         if n == old.n_nodes:
             return
-        new = self._empty(n, old.src, old.dst)
+        new = self._empty(n, old.src[:0], old.dst[:0])  # node arrays only: the edge arrays carry over
+        new.src, new.dst = old.src, old.dst
         m = old.n_nodes
         for name in ("phi", "phi_avg", "phi_scale", "node_hours", "quad_mean"):
             getattr(new, name)[:m] = getattr(old, name)
@@ -466,7 +472,8 @@ class FlowLearner:
         position 0, then are reset to the fresh values of :meth:`_empty`)."""
         st, s = self.state, self.settings
         if flow_kernels.AVAILABLE:
-            return self._gathered_fused(keep, src, dst)
+            moved = self._moved(keep, src, dst)
+            return moved if moved is not None else self._gathered_fused(keep, src, dst)
         at, new = np.maximum(keep, 0), np.flatnonzero(keep < 0)
 
         def take(values: np.ndarray, axis: int) -> np.ndarray:
@@ -486,17 +493,42 @@ class FlowLearner:
         return replace(st, src=src, dst=dst, beta=beta, beta_avg=beta_avg, cov=take(st.cov, 0),
                        edge_hours=take(st.edge_hours, 0))
 
+    def _moved(self, keep: np.ndarray, src: np.ndarray, dst: np.ndarray) -> FlowState | None:
+        """:meth:`_gathered` in place, when kept links kept their order and every per-edge
+        buffer has room for the new count (see :mod:`alerter.edge_room`); else None."""
+        st, s = self.state, self.settings
+        e = keep.shape[0]
+        arrays = [(st.beta, 1), (st.cov, 0), (st.edge_hours, 0)] + ([] if s.forgetting else [(st.beta_avg, 1)])
+        rooms = [r for r in (edge_room.room(a, axis, e) for a, axis in arrays) if r is not None]
+        if len(rooms) < len(arrays):
+            return None
+        moves = edge_room.plan(keep)
+        if moves is None:
+            return None
+        for buf, (_, axis) in zip(rooms, arrays, strict=True):
+            edge_room.move(buf, axis, moves)
+        beta, cov, hours = rooms[0][:, :e], rooms[1][:e], rooms[2][:e]
+        beta_avg = beta if s.forgetting else rooms[3][:, :e]
+        for b in {id(beta): beta, id(beta_avg): beta_avg}.values():
+            b[0, moves.fresh] = s.prior
+            b[1:, moves.fresh] = 0
+        cov[moves.fresh] = 0
+        hours[moves.fresh] = 0
+        return replace(st, src=src, dst=dst, beta=beta, beta_avg=beta_avg, cov=cov, edge_hours=hours)
+
     def _gathered_fused(self, keep: np.ndarray, src: np.ndarray, dst: np.ndarray) -> FlowState:
-        """:meth:`_gathered` as one parallel kernel pass per iterate (see flow_kernels)."""
+        """:meth:`_gathered` as one parallel kernel pass per iterate (see flow_kernels), into
+        arrays with spare room."""
         st, s = self.state, self.settings
         e, m = keep.shape[0], st.cov.shape[1] * st.cov.shape[2]
-        beta, cov = np.empty((st.beta.shape[0], e), st.beta.dtype), np.empty((e, *st.cov.shape[1:]), st.cov.dtype)
-        hours = np.empty(e, st.edge_hours.dtype)
+        beta = edge_room.allocate((st.beta.shape[0], e), st.beta.dtype, axis=1)
+        cov = edge_room.allocate((e, *st.cov.shape[1:]), st.cov.dtype, axis=0)
+        hours = edge_room.allocate((e,), st.edge_hours.dtype, axis=0)
         old_cov = st.cov.reshape(st.cov.shape[0], m)  # st.src already holds the new edges
         flow_kernels.gather_edges(keep, st.beta, old_cov, st.edge_hours, beta, cov.reshape(e, m), hours, s.prior)
         beta_avg = beta
         if not s.forgetting:
-            beta_avg = np.empty_like(beta)
+            beta_avg = edge_room.allocate(beta.shape, beta.dtype, axis=1)
             flow_kernels.gather_edges(keep, st.beta_avg, old_cov[:, :0], st.edge_hours, beta_avg,
                                       np.empty((e, 0), st.cov.dtype), np.empty_like(hours), s.prior)
         return replace(st, src=src, dst=dst, beta=beta, beta_avg=beta_avg, cov=cov, edge_hours=hours)

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import flow_kernels
+from . import edge_room, flow_kernels
 from .attribution import Attribution
 from .config import AttributionSettings, FlowConfig
 from .flows import FlowLearner, FlowSettings, LinkAges, match_edges, persistence_forecast
@@ -108,11 +108,19 @@ class JointModel:
         if key == self._synced:
             return
         csr = self.graph.csr()
-        self.born = self.born[:0]  # freed before its successor is built (peak memory)
         keep, self.born = self._kept(csr.order, csr.src_sorted, csr.dst_sorted, n)
         self.indptr = np.asarray(csr.indptr, np.int64)
         self.learner.resize(n, csr.src_sorted, csr.dst_sorted, keep, self.indptr)
         self._synced = key  # type: ignore[assignment]
+
+    def _born_buffer(self, m: int, dtype: np.dtype) -> np.ndarray:
+        """Room for ``m`` birth hours: the last sync's buffer when it has room (no new pages
+        to fault in), else a new one with room; the old hours are not read again."""
+        buf = edge_room.room(self.born, 0, m) if self.born.dtype == dtype else None
+        if buf is not None:
+            return buf[:m]
+        self.born = self.born[:0]  # freed before its successor is made (peak memory)
+        return edge_room.allocate((m,), dtype, axis=0)  # int32 (int64 in graphs of older checkpoints)
 
     def _kept(self, order: np.ndarray, src: np.ndarray, dst: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
         """``keep[new position] = learner position of the same link at the last sync, or -1``,
@@ -129,7 +137,7 @@ class JointModel:
         if fresh:
             g.register(_POSITION, np.int32, fill=-1)
         pos = g.array(_POSITION)[0]
-        born = np.empty(order.shape[0], g.born.dtype)  # int32 (int64 in graphs of older checkpoints)
+        born = self._born_buffer(order.shape[0], g.born.dtype)
         keep = np.empty(order.shape[0], np.int32)
         if flow_kernels.AVAILABLE:  # one parallel pass
             flow_kernels.follow_slots(order, pos, g.born, keep, born)

@@ -14,7 +14,7 @@ import threading
 import numpy as np
 import pytest
 
-from alerter import flow_kernels
+from alerter import edge_room, flow_kernels
 from alerter.flows import FlowLearner, FlowSettings, LinkAges
 
 from .test_flows_generic import LoopFlows
@@ -165,6 +165,85 @@ def test_regather_after_link_changes_equals_numpy(kw: dict, monkeypatch: pytest.
     new = keep < 0
     assert np.all(a.beta[0, new] == a.beta.dtype.type(fused.settings.prior)) and np.all(a.beta[1:, new] == 0)
     assert np.all(a.edge_hours[new] == 0) and np.all(a.edge_hours[~new] > 0)
+
+
+def _ordered_keep(n_old: int, drop: int, add: int, rng: np.random.Generator) -> np.ndarray:
+    """New position -> old position for a link change that keeps the survivors' order:
+    ``drop`` old links gone, ``add`` new ones (-1) inserted at random places."""
+    kept = np.sort(rng.choice(n_old, n_old - drop, replace=False))
+    keep = np.insert(kept, np.sort(rng.integers(0, kept.size + 1, add)), -1)
+    return keep.astype(np.int32)
+
+
+@pytest.mark.parametrize("kw", [dict(), dict(dtype="float64", forgetting=False, lags=1, own_lag=True)])
+def test_in_place_move_after_link_changes_equals_numpy(kw: dict, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Link changes that keep the survivors' order move per-edge state inside its buffers
+    (no new arrays where they have room); the state equals what the numpy gathers give, over
+    shrinking, growing within the room, growing past it and a reshuffle (which gathers)."""
+    fused, plain = _pair(**kw)
+    rng = np.random.default_rng(8)
+    n_old = SRC.size
+    buffers = []
+    for step, (drop, add) in enumerate([(30, 10), (5, 40), (0, 3), (12, 12), (0, 3000), (20, 0), (None, 5)]):
+        for _, x, b in _hours(6, seed=step):
+            fused.observe(x, b, None)
+            plain.observe(x, b, None)
+        if drop is None:  # a reshuffle, as after the graph's compaction: not movable in place
+            keep = rng.permutation(n_old).astype(np.int32)
+            keep[rng.choice(n_old, add, replace=False)] = -1
+        else:
+            keep = _ordered_keep(n_old, drop, add, rng)
+        n_old = keep.size
+        src, dst = rng.integers(0, N, n_old), rng.integers(0, N, n_old)
+        fused.reindex(keep, n_old, src, dst)
+        with monkeypatch.context() as m:
+            m.setattr(flow_kernels, "AVAILABLE", False)
+            plain.reindex(keep, n_old, src, dst)
+        a, b_ = fused.state, plain.state
+        for name in ("beta", "beta_avg", "cov", "edge_hours", "src", "dst"):
+            np.testing.assert_array_equal(getattr(a, name), getattr(b_, name), err_msg=f"{name} after change {step}")
+        buffers.append(edge_room.room(a.cov, 0, n_old))
+    assert all(b is not None for b in buffers)
+    same = [buffers[i] is buffers[i - 1] for i in range(1, len(buffers))]
+    if fused.settings.lags == 0:
+        # the 3000 added links outgrow the room, and the reshuffle gathers: new buffers there only
+        assert same == [True, True, True, False, True, False]
+        assert edge_room.room(fused.state.beta, 1, n_old) is not None  # beta moved in place as well
+    else:  # (lags + 1, E) coefficients get no room (a strided view): every change gathers
+        assert not any(same)
+
+
+def test_edge_room_moves_equal_a_gather() -> None:
+    """``edge_room.move`` of a random order-keeping plan equals numpy's ``take``, for a
+    per-edge axis first and last; foreign arrays and strided views get no room."""
+    rng = np.random.default_rng(9)
+    for trial in range(20):
+        n_old = int(rng.integers(50, 400))
+        keep = _ordered_keep(n_old, int(rng.integers(0, 30)), int(rng.integers(0, 5)), rng)
+        for shape, axis in (((n_old, 2, 2), 0), ((1, n_old), 1), ((n_old,), 0)):
+            a = edge_room.allocate(shape, np.float32, axis)
+            a[...] = rng.random(shape)
+            want = np.take(a, np.maximum(keep, 0), axis=axis)
+            buf = edge_room.room(a, axis, keep.size)
+            if buf is None:  # only when the insertions outgrew the room
+                assert keep.size > buf_len(shape, axis)
+                continue
+            moves = edge_room.plan(keep)
+            assert moves is not None
+            np.testing.assert_array_equal(moves.fresh, np.flatnonzero(keep < 0))
+            edge_room.move(buf, axis, moves)
+            got = buf[(slice(None),) * axis + (slice(0, keep.size),)]
+            kept = keep >= 0
+            np.testing.assert_array_equal(np.compress(kept, got, axis=axis), np.compress(kept, want, axis=axis),
+                                          err_msg=f"trial {trial}, shape {shape}")
+    assert edge_room.room(np.zeros(10)[:5], 0, 5) is None  # not made by allocate
+    assert edge_room.room(edge_room.allocate((5,), np.float64, 0)[::2], 0, 2) is None  # strided
+    assert edge_room.plan(np.array([0, 2, 1], np.int32)) is None  # order changed
+
+
+def buf_len(shape: tuple[int, ...], axis: int) -> int:
+    """The length along ``axis`` of a buffer :func:`edge_room.allocate` makes for ``shape``."""
+    return edge_room.room(edge_room.allocate(shape, np.float32, axis), axis, 0).shape[axis]
 
 
 @pytest.mark.parametrize("dtype", [np.int32, np.int64])
