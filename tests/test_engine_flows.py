@@ -8,7 +8,15 @@ from datetime import timedelta
 import numpy as np
 import pytest
 
-from alerter.config import CapacityRule, Config, IncidentSettings, PartialDirectionRule, RuleOverride, RuleSettings
+from alerter.config import (
+    BaselineSettings,
+    CapacityRule,
+    Config,
+    IncidentSettings,
+    PartialDirectionRule,
+    RuleOverride,
+    RuleSettings,
+)
 from alerter.edge_runs import Segments
 from alerter.engine import Engine
 from alerter.timeaxis import parse_hour
@@ -162,6 +170,59 @@ def test_links_keep_their_coefficients_through_changes_and_a_re_added_link_start
     assert joint._position(eng.nodes.get("/side1"), eng.nodes.get("/child")) is None
     for s in ["/hub", *(f"/side{k}" for k in range(2, 6))]:
         assert coefficient(s, "/child") == learned[s], s
+
+
+def _churning_engine(hours: int, seed: int) -> tuple[Engine, list]:
+    """An engine over a random 60-node graph whose links change every hour (a few removed,
+    a few new, new nodes now and then; the graph compacts every 15 hours or so)."""
+    eng = Engine(Config(baseline=BaselineSettings(warmup_hours=24)))
+    eng.graph.tail_limit = eng.graph.dead_limit = 60  # a compaction every 15 hours or so
+    rng = np.random.default_rng(seed)
+    for s, d in rng.integers(0, 60, size=(500, 2)).tolist():
+        if s != d:
+            eng.add_edge(f"/p{s}", f"/p{d}", T0)
+    level = rng.uniform(20.0, 400.0, 70)
+    alerts = []
+    for h in range(hours):
+        hour = T0 + timedelta(hours=h)
+        if h:
+            csr = eng.graph.csr()
+            for p in rng.choice(csr.src_sorted.size, 4, replace=False).tolist():
+                eng.remove_edge(eng.nodes.ids[int(csr.src_sorted[p])], eng.nodes.ids[int(csr.dst_sorted[p])], hour)
+            for s, d in rng.integers(0, min(60 + h // 4, 70), size=(4, 2)).tolist():
+                if s != d:
+                    eng.add_edge(f"/p{s}", f"/p{d}", hour)
+        n = min(60 + h // 4, 70)
+        x = rng.poisson(level[:n] * (1.0 + 0.4 * np.sin(2 * np.pi * h / 24.0)) * (3.0 if h % 17 == 9 else 1.0))
+        res = eng.step(hour, {f"/p{k}": float(v) for k, v in enumerate(x)})
+        alerts.append([a.to_dict() for a in res.alerts])
+    return eng, alerts
+
+
+def test_moving_link_state_in_place_equals_gathering_it(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Hours whose links change move the learner's per-edge state and the links' birth hours
+    inside their buffers (``alerter.edge_room``); with that switched off they are gathered
+    into new arrays. Both must give the same engine, bit for bit: every hour's alerts, the
+    final coefficients, variances, observed hours, endpoints and birth hours."""
+    from alerter import edge_room, flow_kernels
+
+    if not flow_kernels.AVAILABLE:
+        pytest.skip("the in-place path needs the numba kernels (ALERTER_FLOW_KERNEL=numpy set)")
+    moved = []
+    real_move = edge_room.move
+    monkeypatch.setattr(edge_room, "move", lambda *a: (moved.append(1), real_move(*a))[1])
+    in_place, alerts_a = _churning_engine(72, seed=21)
+    monkeypatch.setattr(edge_room, "plan", lambda keep: None)
+    gathered, alerts_b = _churning_engine(72, seed=21)
+    assert len(moved) >= 3 * 40  # most hours moved their three arrays in place
+    assert sum(map(len, alerts_a)) > 0 and alerts_a == alerts_b
+    a, b = in_place.joint.learner.state, gathered.joint.learner.state
+    for name in ("beta", "cov", "edge_hours", "src", "dst", "node_hours", "quad_mean"):
+        np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
+    csr = in_place.graph.csr()  # birth hours rewritten into their old buffer: the graph's, in CSR order
+    np.testing.assert_array_equal(in_place.joint.born, in_place.graph.born[csr.order])
+    np.testing.assert_array_equal(in_place.joint.born, gathered.joint.born)
+    assert in_place.joint.graph.generation >= 3  # compactions (which reorder: gathered) along the way
 
 
 def test_the_learner_takes_its_runs_from_the_graph_and_they_match_a_search() -> None:
