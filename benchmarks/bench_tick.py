@@ -172,21 +172,17 @@ def run_ticks(eng: Engine, data: list[np.ndarray], warm: int, ticks: int, seed: 
 
 
 def change_ticks(eng: Engine, data: list[np.ndarray], first: int, ticks: int, changes: int,
-                 seed: int) -> tuple[list[float], list[float]]:
+                 seed: int) -> PartTimer:
     """Ticks whose hour also brings ``changes`` link events (half removals of random existing
-    links, half new links): the learner's re-sync with the graph runs inside the tick.
-    Returns (tick ms, sync ms) per tick."""
+    links, half new links): the learner's re-sync with the graph runs inside the tick. The
+    timer holds per tick the whole tick, the re-sync, and inside it the graph's CSR build and
+    the learner's re-index."""
     rng = np.random.default_rng(seed + 2)
     ids, n = eng.nodes.ids, len(eng.nodes)
-    sync_ms: list[float] = []
-    inner = eng.joint.sync
-
-    def timed() -> None:
-        t0 = time.perf_counter()
-        inner()
-        sync_ms[-1] += (time.perf_counter() - t0) * 1e3
-    eng.joint.sync = timed  # type: ignore[method-assign]
-    out = []
+    timer = PartTimer()
+    timer.wrap(eng.joint, "sync", "re-sync")
+    timer.wrap(eng.joint.graph, "csr", "graph CSR")
+    timer.wrap(eng.joint.learner, "resize", "learner re-index")
     for k in range(ticks):
         hour = START + timedelta(hours=first + k)
         st = eng.joint.learner.state
@@ -195,15 +191,12 @@ def change_ticks(eng: Engine, data: list[np.ndarray], first: int, ticks: int, ch
         for s, d in rng.integers(0, n, size=(changes - changes // 2, 2)).tolist():
             if s != d:
                 eng.add_edge(ids[s], ids[d], hour)
-        sync_ms.append(0.0)
         t0 = time.perf_counter()
         eng.step_array(hour, data[(first + k) % len(data)])
-        out.append((time.perf_counter() - t0) * 1e3)
-    eng.joint.sync = inner  # type: ignore[method-assign]
-    return out, sync_ms
+        timer.close_tick((time.perf_counter() - t0) * 1e3)
+    return timer
 
 
-# -- memory ------------------------------------------------------------------------------
 def peak_gib() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20  # Linux: KiB
 
@@ -341,11 +334,11 @@ def main() -> None:
           f"[target < {TARGET_PEAK_GIB:g} GiB: {verdict(peak < TARGET_PEAK_GIB)}]; "
           f"peak over the ticks alone (VmHWM after reset): {tick_peak:.2f} GiB")
     if args.changes and args.change_ticks:
-        ticks_ms, sync_ms = change_ticks(eng, data, args.warm + args.ticks, args.change_ticks, args.changes,
-                                         args.seed)
+        ch = change_ticks(eng, data, args.warm + args.ticks, args.change_ticks, args.changes, args.seed)
         print(f"tick with {args.changes} link changes (half removed, half new): median "
-              f"{statistics.median(ticks_ms):8.1f} ms over {len(ticks_ms)} ticks, of which learner re-sync "
-              f"with the graph {statistics.median(sync_ms):.1f} ms; peak memory now {peak_gib():.2f} GiB")
+              f"{ch.median('tick'):8.1f} ms over {len(ch.ticks)} ticks, of which learner re-sync "
+              f"with the graph {ch.median('re-sync'):.1f} ms (graph CSR build {ch.median('graph CSR'):.1f}, "
+              f"learner re-index {ch.median('learner re-index'):.1f}); peak memory now {peak_gib():.2f} GiB")
     passes = edge_passes(eng)
     edges = eng.joint.learner.state.n_edges
     ref_med, ref_min = plain_numpy_step_ms(eng) if scale == 1 else (float("nan"), float("nan"))
