@@ -290,16 +290,21 @@ def gather_edges(keep, beta, cov, hours, new_beta, new_cov, new_hours, prior):  
 
 
 @_pjit
-def follow_slots(order, position, born, keep, born_out):  # noqa: ANN001, ANN201
+def follow_slots(order, position, born, keep, born_out, src, dst, src_out, dst_out):  # noqa: ANN001, ANN201, PLR0913
     """Re-sync with the link graph in one parallel pass over the new CSR order (``order[p]``
     is the graph slot at position ``p``, each slot once): ``keep[p]`` takes the slot's learner
     position of the last sync (-1 for a new slot), the slot records ``p`` for the next one,
-    and ``born_out[p]`` the link's birth hour."""
+    ``born_out[p]`` the link's birth hour and, when ``src_out`` is not empty, ``src_out[p]``
+    and ``dst_out[p]`` its endpoints (from the per-slot ``src`` and ``dst``)."""
+    ends = src_out.shape[0] > 0
     for p in _prange(order.shape[0]):
         s = order[p]
         keep[p] = position[s]
         position[s] = p
         born_out[p] = born[s]
+        if ends:
+            src_out[p] = src[s]
+            dst_out[p] = dst[s]
 
 
 def value_range(a: np.ndarray) -> tuple[int, int]:

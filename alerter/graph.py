@@ -350,20 +350,43 @@ class LinkGraph:
             self._cache["csr"] = (self.version, view)
         return view
 
-    def _build_csr(self) -> CSRView:
+    def order_index(self) -> tuple[np.ndarray, np.ndarray]:
+        """The destination-sorted CSR without its endpoint arrays, ``(order, indptr)``, cached
+        until the next change: all a holder of per-edge state in CSR order needs to follow the
+        slots (the endpoints are then read per slot); :meth:`csr` adds the endpoints."""
+        order, indptr, _ = self._order_parts()
+        return order, _extend_indptr(indptr, len(self.nodes))
+
+    def _order_parts(self) -> tuple[np.ndarray, np.ndarray, Plan | None]:
+        """``(order, indptr, plan)``: the splice plan from the main segment, None if no change."""
+        hit = self._cache.get("order")
+        if hit is None or hit[0] != self.version:
+            hit = self._cache["order"] = (self.version, self._build_order())
+        parts: tuple[np.ndarray, np.ndarray, Plan | None] = hit[1]
+        return parts
+
+    def _build_order(self) -> tuple[np.ndarray, np.ndarray, Plan | None]:
         m = self.main
         order, indptr = self._main_index()
+        if not (self.n_slots > m or self.n_dead):
+            return order, indptr, None
+        drop, tail = self._pending()
+        plan = _splice_plan(m, drop, np.searchsorted(self.dst[:m], self.dst[tail], side="right"))
+        slot = np.int32 if len(self.src) < 2**31 else np.int64  # capacity may have grown past int32
+        order = _splice(plan, order.astype(slot, copy=False), tail.astype(slot))
+        nodes = np.arange(len(indptr), dtype=np.int32)
+        indptr = indptr - np.searchsorted(self.dst[drop], nodes) + np.searchsorted(self.dst[tail], nodes)
+        _readonly(order, indptr)
+        return order, indptr, plan
+
+    def _build_csr(self) -> CSRView:
+        m = self.main
+        order, indptr, plan = self._order_parts()
         src, dst = self.src[:m], self.dst[:m]
-        if self.n_slots > m or self.n_dead:
-            drop, tail = self._pending()
-            plan = _splice_plan(m, drop, np.searchsorted(dst, self.dst[tail], side="right"))
-            slot = np.int32 if len(self.src) < 2**31 else np.int64  # capacity may have grown past int32
-            order = order.astype(slot, copy=False)
-            order, src, dst = _splice(plan, order, tail.astype(slot)), _splice(plan, src, self.src[tail]), \
-                _splice(plan, dst, self.dst[tail])
-            nodes = np.arange(len(indptr), dtype=np.int32)
-            indptr = indptr - np.searchsorted(self.dst[drop], nodes) + np.searchsorted(self.dst[tail], nodes)
-        _readonly(order, indptr, src, dst)
+        if plan is not None:
+            tail = self._pending()[1]
+            src, dst = _splice(plan, src, self.src[tail]), _splice(plan, dst, self.dst[tail])
+        _readonly(src, dst)
         return CSRView(order, indptr, src, dst)
 
     def sum_into_dst(self, values_per_slot: np.ndarray) -> np.ndarray:

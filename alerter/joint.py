@@ -107,22 +107,51 @@ class JointModel:
         key = (self.graph.version, n)
         if key == self._synced:
             return
-        csr = self.graph.csr()
-        keep, self.born = self._kept(csr.order, csr.src_sorted, csr.dst_sorted, n)
-        self.indptr = np.asarray(csr.indptr, np.int64)
-        self.learner.resize(n, csr.src_sorted, csr.dst_sorted, keep, self.indptr)
+        g = self.graph
+        fresh = not g.has_array(_POSITION)
+        if fresh:
+            g.register(_POSITION, np.int32, fill=-1)
+        if flow_kernels.AVAILABLE and not fresh and g.src.dtype == np.int32 and n < 2**31:
+            order, indptr = g.order_index()
+            keep, self.born, src, dst = self._followed(order)
+        else:
+            csr = g.csr()
+            order, indptr, src, dst = csr.order, csr.indptr, csr.src_sorted, csr.dst_sorted
+            keep, self.born = self._kept(order)
+            old = self.learner.state
+            if fresh and old.src.size:  # never followed by slot (bulk load, older checkpoint): match by pair
+                keep = match_edges(old.src, old.dst, src, dst, max(n, 1))
+        self.indptr = np.asarray(indptr, np.int64)
+        self.learner.resize(n, src, dst, keep, self.indptr)
         self._synced = key  # type: ignore[assignment]
 
-    def _born_buffer(self, m: int, dtype: np.dtype) -> np.ndarray:
-        """Room for ``m`` birth hours: the last sync's buffer when it has room (no new pages
-        to fault in), else a new one with room; the old hours are not read again."""
-        buf = edge_room.room(self.born, 0, m) if self.born.dtype == dtype else None
-        if buf is not None:
-            return buf[:m]
-        self.born = self.born[:0]  # freed before its successor is made (peak memory)
-        return edge_room.allocate((m,), dtype, axis=0)  # int32 (int64 in graphs of older checkpoints)
+    def _buffer(self, current: np.ndarray, m: int, dtype: type) -> np.ndarray:
+        """Room for ``m`` per-edge values: ``current``'s buffer when it has room (no new pages to
+        fault in; its old values are not read again), else a new one with room."""
+        buf = edge_room.room(current, 0, m) if current.dtype == dtype else None
+        return buf[:m] if buf is not None else edge_room.allocate((m,), dtype, axis=0)
 
-    def _kept(self, order: np.ndarray, src: np.ndarray, dst: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+    def _born_buffer(self, m: int) -> np.ndarray:
+        """:meth:`_buffer` for the birth hours (the graph's dtype: int32, int64 in graphs of
+        older checkpoints); an old buffer without room is let go first (peak memory)."""
+        dtype = self.graph.born.dtype.type
+        if self.born.dtype != dtype or edge_room.room(self.born, 0, m) is None:
+            self.born = self.born[:0]
+        return self._buffer(self.born, m, dtype)
+
+    def _followed(self, order: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`_kept` plus the links' endpoints in the new order, read per slot in the same
+        parallel pass into the learner's own endpoint buffers (the graph's CSR endpoint arrays
+        are not built). Returned read-only, so the learner shares them."""
+        g, st, m = self.graph, self.learner.state, order.shape[0]
+        born = self._born_buffer(m)
+        src, dst = self._buffer(st.src, m, np.int32), self._buffer(st.dst, m, np.int32)
+        keep = np.empty(m, np.int32)
+        flow_kernels.follow_slots(order, g.array(_POSITION)[0], g.born, keep, born, g.src, g.dst, src, dst)
+        src.flags.writeable = dst.flags.writeable = False
+        return keep, born, src, dst
+
+    def _kept(self, order: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """``keep[new position] = learner position of the same link at the last sync, or -1``,
         and the links' birth hours in the new order (the graph's dtype: int32).
 
@@ -130,24 +159,19 @@ class JointModel:
         follows the slots through compaction; new slots start at -1), so matching is one
         gather and one scatter, O(edges), instead of a sort of every (src, dst) pair. A
         graph that never held the array (loaded in bulk, or from an older checkpoint) is
-        matched once by pair.
+        matched once by pair (in :meth:`sync`).
         """
         g = self.graph
-        fresh = not g.has_array(_POSITION)
-        if fresh:
-            g.register(_POSITION, np.int32, fill=-1)
         pos = g.array(_POSITION)[0]
-        born = self._born_buffer(order.shape[0], g.born.dtype)
+        born = self._born_buffer(order.shape[0])
         keep = np.empty(order.shape[0], np.int32)
         if flow_kernels.AVAILABLE:  # one parallel pass
-            flow_kernels.follow_slots(order, pos, g.born, keep, born)
+            none = np.zeros(0, np.int32)
+            flow_kernels.follow_slots(order, pos, g.born, keep, born, none, none, none, none)
         else:
             keep[:] = pos[order]
             pos[order] = np.arange(order.shape[0], dtype=np.int32)
             born[:] = g.born[order]
-        old = self.learner.state
-        if fresh and old.src.size:
-            keep = match_edges(old.src, old.dst, src, dst, max(n, 1))
         return keep, born
 
     # -- per hour ----------------------------------------------------------------------

@@ -186,7 +186,9 @@ def _churning_engine(hours: int, seed: int) -> tuple[Engine, list]:
     for h in range(hours):
         hour = T0 + timedelta(hours=h)
         if h:
-            csr = eng.graph.csr()
+            csr = eng.graph.csr()  # the learner follows the graph: its endpoints are the CSR's
+            np.testing.assert_array_equal(eng.joint.learner.state.src, csr.src_sorted, err_msg=f"hour {h}")
+            np.testing.assert_array_equal(eng.joint.learner.state.dst, csr.dst_sorted, err_msg=f"hour {h}")
             for p in rng.choice(csr.src_sorted.size, 4, replace=False).tolist():
                 eng.remove_edge(eng.nodes.ids[int(csr.src_sorted[p])], eng.nodes.ids[int(csr.dst_sorted[p])], hour)
             for s, d in rng.integers(0, min(60 + h // 4, 70), size=(4, 2)).tolist():
@@ -200,10 +202,11 @@ def _churning_engine(hours: int, seed: int) -> tuple[Engine, list]:
 
 
 def test_moving_link_state_in_place_equals_gathering_it(monkeypatch: pytest.MonkeyPatch) -> None:
-    """Hours whose links change move the learner's per-edge state and the links' birth hours
-    inside their buffers (``alerter.edge_room``); with that switched off they are gathered
-    into new arrays. Both must give the same engine, bit for bit: every hour's alerts, the
-    final coefficients, variances, observed hours, endpoints and birth hours."""
+    """Hours whose links change move the learner's per-edge state inside its buffers and
+    rewrite the links' endpoints and birth hours into theirs (``alerter.edge_room``); with
+    no room anywhere all of it goes into new arrays. Both must give the same engine, bit for
+    bit: every hour's alerts, the final coefficients, variances, observed hours, endpoints
+    and birth hours; and every hour the learner's endpoints are the graph's CSR."""
     from alerter import edge_room, flow_kernels
 
     if not flow_kernels.AVAILABLE:
@@ -212,7 +215,7 @@ def test_moving_link_state_in_place_equals_gathering_it(monkeypatch: pytest.Monk
     real_move = edge_room.move
     monkeypatch.setattr(edge_room, "move", lambda *a: (moved.append(1), real_move(*a))[1])
     in_place, alerts_a = _churning_engine(72, seed=21)
-    monkeypatch.setattr(edge_room, "plan", lambda keep: None)
+    monkeypatch.setattr(edge_room, "room", lambda *a: None)  # no buffer has room: all new arrays
     gathered, alerts_b = _churning_engine(72, seed=21)
     assert len(moved) >= 3 * 40  # most hours moved their three arrays in place
     assert sum(map(len, alerts_a)) > 0 and alerts_a == alerts_b
