@@ -26,10 +26,14 @@ def alive_slots(g: LinkGraph) -> np.ndarray:
 
 
 def check_csr(g: LinkGraph) -> None:
-    """The CSR is the stable dst-sort of the alive slots (numpy argsort as the reference)."""
+    """The CSR is the stable dst-sort of the alive slots (numpy argsort as the reference);
+    the slot order alone (what the flow learner's re-sync reads) is the same."""
+    order, indptr = g.order_index()  # built first: csr() then adds its endpoints
     c = g.csr()
     slots = alive_slots(g)
     expected = slots[np.argsort(g.dst[slots], kind="stable")]
+    np.testing.assert_array_equal(order, expected)
+    np.testing.assert_array_equal(indptr, c.indptr)
     np.testing.assert_array_equal(c.order, expected)
     np.testing.assert_array_equal(c.src_sorted, g.src[expected])
     np.testing.assert_array_equal(c.dst_sorted, g.dst[expected])
