@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import ctypes
 import weakref
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -73,12 +74,13 @@ def room(a: np.ndarray, axis: int, n: int) -> np.ndarray | None:
     return buf
 
 
+@dataclass(frozen=True)
 class Moves:
     """Where the kept edges go: ``runs[r] = (start, stop, d)`` says new positions
     ``start:stop`` take old positions ``start + d : stop + d``; ``fresh`` are the new links."""
 
-    def __init__(self, runs: np.ndarray, fresh: np.ndarray) -> None:
-        self.runs, self.fresh = runs, fresh
+    runs: np.ndarray  # (R, 3) int64
+    fresh: np.ndarray  # (F,) int64 new positions of links that were not there before
 
 
 def plan(keep: np.ndarray) -> Moves | None:

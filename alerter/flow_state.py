@@ -24,6 +24,7 @@ OLD_AFTER_TAUS = 20.0
 """Link age, in ``age_tau_hours``, from which a link's novelty weight is 0 (exp(-20) = 2e-9
 of the source's baseline: nothing a count could show)."""
 
+
 @dataclass(frozen=True)
 class FlowSettings:
     """Settings of the flow learner; stored exactly as given, never modified."""
@@ -272,6 +273,7 @@ def follow_edges(state: FlowState, settings: FlowSettings, keep: np.ndarray, src
     return replace(st, src=src, dst=dst, beta=beta, beta_avg=beta_avg, cov=take(st.cov, 0),
                    edge_hours=take(st.edge_hours, 0))
 
+
 def _moved(st: FlowState, s: FlowSettings, keep: np.ndarray, src: np.ndarray, dst: np.ndarray) -> FlowState | None:
     """:func:`follow_edges` in place, when kept links kept their order and every per-edge
     buffer has room for the new count (see :mod:`alerter.edge_room`); else None."""
@@ -287,12 +289,13 @@ def _moved(st: FlowState, s: FlowSettings, keep: np.ndarray, src: np.ndarray, ds
         edge_room.move(buf, axis, moves)
     beta, cov, hours = rooms[0][:, :e], rooms[1][:e], rooms[2][:e]
     beta_avg = beta if s.forgetting else rooms[3][:, :e]
-    for b in {id(beta): beta, id(beta_avg): beta_avg}.values():
+    for b in (beta,) if beta_avg is beta else (beta, beta_avg):
         b[0, moves.fresh] = s.prior
         b[1:, moves.fresh] = 0
     cov[moves.fresh] = 0
     hours[moves.fresh] = 0
     return replace(st, src=src, dst=dst, beta=beta, beta_avg=beta_avg, cov=cov, edge_hours=hours)
+
 
 def _gathered_fused(st: FlowState, s: FlowSettings, keep: np.ndarray, src: np.ndarray,
                     dst: np.ndarray) -> FlowState:
@@ -308,5 +311,5 @@ def _gathered_fused(st: FlowState, s: FlowSettings, keep: np.ndarray, src: np.nd
     if not s.forgetting:
         beta_avg = edge_room.allocate(beta.shape, beta.dtype, axis=1)
         flow_kernels.gather_edges(keep, st.beta_avg, old_cov[:, :0], st.edge_hours, beta_avg,
-                                  np.empty((e, 0), st.cov.dtype), np.empty_like(hours), s.prior)
+                                  np.empty((e, 0), st.cov.dtype), hours, s.prior)  # same hours again
     return replace(st, src=src, dst=dst, beta=beta, beta_avg=beta_avg, cov=cov, edge_hours=hours)

@@ -111,7 +111,7 @@ class JointModel:
         fresh = not g.has_array(_POSITION)
         if fresh:
             g.register(_POSITION, np.int32, fill=-1)
-        if flow_kernels.AVAILABLE and not fresh and g.src.dtype == np.int32 and n < 2**31:
+        if flow_kernels.AVAILABLE and not fresh and g.src.dtype == np.int32:  # int32: the learner's type
             order, indptr = g.order_index()
             keep, self.born, src, dst = self._followed(order)
         else:
