@@ -90,10 +90,12 @@ def _owned(text: str | None, total: int) -> list[int]:
 
 
 def run_services(config: Config, store: Store, partitions: list[int], *, drained: bool,
-                 consumer: str | None = None, on_alert: Callable[[Alert], None] | None = None) -> list[Service]:
-    """Run one Service per owned partition (threads when more than one) until done."""
-    services = [Service(config, store, partition=p, drained=drained, consumer=consumer, on_alert=on_alert)
-                for p in partitions]
+                 consumer: str | None = None, on_alert: Callable[[Alert], None] | None = None,
+                 settle_heap: bool = False) -> list[Service]:
+    """Run one Service per owned partition (threads when more than one) until done; with
+    ``settle_heap`` the first of them freezes the process's settled heap (see heap)."""
+    services = [Service(config, store, partition=p, drained=drained, consumer=consumer, on_alert=on_alert,
+                        settle_heap=settle_heap and k == 0) for k, p in enumerate(partitions)]
     if len(services) == 1:
         services[0].run()
         return services
@@ -130,7 +132,8 @@ def cmd_run(args: argparse.Namespace) -> int:
     printer = None if args.json else (lambda a: print(alert_line(a), flush=True))
     try:
         services = run_services(config, store, _owned(args.partitions, config.live.partitions),
-                                drained=args.until_drained, consumer=args.consumer, on_alert=printer)
+                                drained=args.until_drained, consumer=args.consumer, on_alert=printer,
+                                settle_heap=True)
     finally:
         store.close()
     totals: dict[str, int] = {}

@@ -30,6 +30,7 @@ from datetime import UTC, datetime, timedelta
 from types import FrameType
 from typing import Any
 
+from . import heap
 from .buckets import ClosedHour, close_due, dense_counts, next_close, watermark_due
 from .checkpoint import ServiceState, dump, load, peek
 from .config import Config, LiveNames
@@ -93,7 +94,7 @@ class Service:
 
     def __init__(self, config: Config, store: Store, *, partition: int = 0, drained: bool = False,
                  consumer: str | None = None, on_alert: Callable[[Alert], None] | None = None,
-                 clock: Callable[[], datetime] = lambda: datetime.now(UTC)) -> None:
+                 clock: Callable[[], datetime] = lambda: datetime.now(UTC), settle_heap: bool = False) -> None:
         self.config, self.live, self.store = config, config.live, store
         self.partition, self.drained, self.clock = partition, drained, clock
         self.consumer = consumer or config.live.consumer
@@ -102,6 +103,7 @@ class Service:
             n = self.names
             check_one_slot(f"partition {partition}", [n.input, n.outbox, n.dead, n.late, n.checkpoint])
         self.on_alert = on_alert
+        self.settle_heap = settle_heap  # freeze the settled heap after the first closed hour (see heap)
         self.state = ServiceState(Engine(config))
         self.summary = Summary()
         self.phase = Phase.STARTING
@@ -390,6 +392,11 @@ class Service:
         if self.on_alert is not None:
             for alert in result.alerts:
                 self.on_alert(alert)
+        if self.settle_heap:
+            self.settle_heap = False
+            frozen, ms = heap.settle()
+            log.info("service heap settled partition=%d frozen_objects=%d took_ms=%.1f",
+                     self.partition, frozen, ms)
 
     # -- commit ------------------------------------------------------------------------
     def _commit(self, why: str) -> None:

@@ -15,12 +15,13 @@ numpy edge step over the same links is timed too and the target scaled by its ra
 issue's 115 ms for that step (both verdicts are printed). A few extra ticks whose hours also add and remove links
 (``--changes``) show what the learner's re-sync with the graph adds to such an hour.
 
-Run: ``.venv/bin/python benchmarks/bench_tick.py [--quick] [--ticks N] [--warm N]``.
+Run: ``.venv/bin/python benchmarks/bench_tick.py [--quick] [--ticks N] [--warm N] [--no-settle]``.
 """
 
 from __future__ import annotations
 
 import argparse
+import gc
 import platform
 import resource
 import statistics
@@ -32,7 +33,7 @@ from typing import Any
 
 import numpy as np
 
-from alerter import flows
+from alerter import flows, heap
 from alerter.config import BaselineSettings, Config
 from alerter.engine import Engine
 from alerter.graph import LinkGraph
@@ -140,6 +141,43 @@ class PartTimer:
         return statistics.median(t.get(part, 0.0) for t in self.ticks)
 
 
+class FullCollections:
+    """Full (oldest-generation) collections of the cyclic garbage collector, with their pauses."""
+
+    def __init__(self) -> None:
+        self.pauses: list[float] = []
+        self._t0 = 0.0
+        gc.callbacks.append(self._seen)
+
+    def _seen(self, phase: str, info: dict[str, int]) -> None:
+        if info["generation"] != 2:
+            return
+        if phase == "start":
+            self._t0 = time.perf_counter()
+        else:
+            self.pauses.append((time.perf_counter() - self._t0) * 1e3)
+
+
+def collection_ms() -> tuple[float, int]:
+    """One full collection's time (best of 3) and the objects it walks."""
+    times = []
+    for _ in range(3):
+        t0 = time.perf_counter()
+        gc.collect()
+        times.append((time.perf_counter() - t0) * 1e3)
+    return min(times), len(gc.get_objects())
+
+
+def settle_heap() -> str:
+    """Freeze the settled heap as ``alerter run`` does after its first hour; say what it saved."""
+    before, n_before = collection_ms()
+    frozen, _ = heap.settle()
+    after, n_after = collection_ms()
+    return (f"heap settled after the warm-up (as alerter run does after its first hour): a full collection "
+            f"walked {n_before:,} objects in {before:.1f} ms, now {n_after:,} in {after:.1f} ms "
+            f"({frozen:,} frozen)")
+
+
 def surge(x: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:
     """Every third tick multiplies 50 random nodes by 20 so alerts and incidents are built."""
     x = x.copy()
@@ -148,12 +186,15 @@ def surge(x: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:
     return x
 
 
-def run_ticks(eng: Engine, data: list[np.ndarray], warm: int, ticks: int, seed: int) -> tuple[PartTimer, int]:
+def run_ticks(eng: Engine, data: list[np.ndarray], warm: int, ticks: int, seed: int,
+              settle: bool = True) -> tuple[PartTimer, int]:
     """Warm ``warm`` hours, then time ``ticks`` hours; returns the timer and the alert count."""
     for h in range(warm):
         t0 = time.perf_counter()
         eng.step_array(START + timedelta(hours=h), data[h % len(data)])
         print(f"  warm-up hour {h + 1}/{warm}: {(time.perf_counter() - t0) * 1e3:8.1f} ms", flush=True)
+    print(settle_heap() if settle else "heap not settled (--no-settle)", flush=True)
+    full = FullCollections()
     timer = PartTimer()
     timer.wrap(eng.joint, "forecast", "joint.forecast")
     timer.wrap(eng.joint, "observe", "joint.observe")
@@ -168,6 +209,9 @@ def run_ticks(eng: Engine, data: list[np.ndarray], warm: int, ticks: int, seed: 
         res = eng.step_array(START + timedelta(hours=h), x)
         timer.close_tick((time.perf_counter() - t0) * 1e3)
         alerts += len(res.alerts)
+    gc.callbacks.remove(full._seen)
+    print(f"full collections during the timed ticks: {len(full.pauses)} "
+          f"(pauses {', '.join(f'{p:.1f}' for p in full.pauses) or '-'} ms)")
     return timer, alerts
 
 
@@ -308,6 +352,8 @@ def main() -> None:
     ap.add_argument("--changes", type=int, default=1000,
                     help="link events per hour in the extra change ticks (0: none)")
     ap.add_argument("--change-ticks", type=int, default=3, help="extra ticks with link changes")
+    ap.add_argument("--no-settle", action="store_true",
+                    help="leave the heap unfrozen after the warm-up (alerter run freezes it after its first hour)")
     args = ap.parse_args()
     scale = 20 if args.quick else 1
     n, e = N_NODES // scale, N_EDGES // scale
@@ -318,7 +364,7 @@ def main() -> None:
     data = hourly_counts(n, 24, args.seed)
     print(f"peak memory after build: {peak_gib():.2f} GiB", flush=True)
     reset_hwm()
-    timer, alerts = run_ticks(eng, data, args.warm, args.ticks, args.seed)
+    timer, alerts = run_ticks(eng, data, args.warm, args.ticks, args.seed, settle=not args.no_settle)
     tick_peak, peak = hwm_gib(), peak_gib()
     tick = timer.median("tick")
     fc, ob, bl = timer.median("joint.forecast"), timer.median("joint.observe"), timer.median("baseline")
