@@ -52,7 +52,7 @@ from .incidents import IncidentUpdate
 from .messages import RenderOptions, render_spill_note, render_update
 from .records import Alert, SpillWarning, alert_from_dict
 from .sinks import Outgoing, Sent, Sink, build_sink
-from .store import id_key
+from .store import check_one_slot, id_key
 
 __all__ = ["TokenBucket", "backoff_seconds", "retry_wait", "severity_of", "in_quiet_hours", "pick_route",
            "SinkWorker", "run_delivery", "sink_keys", "stats_bucket", "alert_from_json", "options_of"]
@@ -157,7 +157,12 @@ class SinkWorker:
     counters: dict[str, int] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
-        self.keys = sink_keys(self.config, self.target.name, self.partition)
+        self.keys = k = sink_keys(self.config, self.target.name, self.partition)
+        if getattr(self.store, "cluster", False):  # its MULTI/EXECs join the outbox's XACK with these
+            check_one_slot(f"sink {self.target.name} of partition {self.partition}",
+                           [k.outbox, k.delivered, k.inflight, k.dead, k.fold, k.message_ids],
+                           f"the sink's own keys carry the hash tag {{p#}} ({DELIVERED_KEY}, % the sink): "
+                           "name live.names.outbox with that tag too, e.g. alerter:{p#}:outbox")
         self.redis = _Keys(self.store, self.keys)
         self.sink = self.sink or build_sink(self.target, self.store)
         self.bucket = TokenBucket(self.target.messages_per_minute)

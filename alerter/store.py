@@ -72,9 +72,12 @@ class Pending:
     idle_ms: int
 
 
-def check_one_slot(what: str, keys: Sequence[str]) -> None:
+_SAME_TAG = "give every name in live.names the same hash tag, e.g. alerter:{p#}:in"
+
+
+def check_one_slot(what: str, keys: Sequence[str], fix: str = _SAME_TAG) -> None:
     """Raise StoreError unless every key hashes to one Redis Cluster slot (a MULTI/EXEC over
-    them is then allowed on a cluster); names the keys and their slots.
+    them is then allowed on a cluster); names the keys, their slots and ``fix``.
 
     >>> check_one_slot("partition 0", ["alerter:{p0}:in", "alerter:{p0}:checkpoint"])
     >>> check_one_slot("partition 0", ["alerter:{p0}:in", "alerter:p0:checkpoint"])  # doctest: +ELLIPSIS
@@ -86,8 +89,7 @@ def check_one_slot(what: str, keys: Sequence[str]) -> None:
     if len(set(slots.values())) > 1:
         listed = ", ".join(f"{k}={v}" for k, v in slots.items())
         raise StoreError(f"the keys of {what} fall in {len(set(slots.values()))} Redis Cluster hash slots "
-                         f"({listed}), but one MULTI/EXEC writes them together; give every name in live.names "
-                         "the same hash tag, e.g. alerter:{p#}:in")
+                         f"({listed}), but one MULTI/EXEC writes them together; {fix}")
 
 
 @contextmanager
