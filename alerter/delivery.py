@@ -158,11 +158,11 @@ class SinkWorker:
 
     def __post_init__(self) -> None:
         self.keys = k = sink_keys(self.config, self.target.name, self.partition)
-        if getattr(self.store, "cluster", False):  # its MULTI/EXECs join the outbox's XACK with these
+        if self.store.cluster:  # its MULTI/EXECs join the outbox's XACK with these
             check_one_slot(f"sink {self.target.name} of partition {self.partition}",
                            [k.outbox, k.delivered, k.inflight, k.dead, k.fold, k.message_ids],
-                           f"the sink's own keys carry the hash tag {{p#}} ({DELIVERED_KEY}, % the sink): "
-                           "name live.names.outbox with that tag too, e.g. alerter:{p#}:outbox")
+                           f"the sink's own keys carry the partition's hash tag (e.g. {k.delivered}): "
+                           "name live.names.outbox with the tag {p#} too, e.g. alerter:{p#}:outbox")
         self.redis = _Keys(self.store, self.keys)
         self.sink = self.sink or build_sink(self.target, self.store)
         self.bucket = TokenBucket(self.target.messages_per_minute)

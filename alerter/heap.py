@@ -5,10 +5,10 @@ object. In an alerter process most of them are created once and never die: the i
 modules (numpy, scipy, numba, pydantic, rich: about 83,000 objects), the compiled kernels
 and a restored engine. Walking them costs 50-80 ms per full collection on the project's
 machine (``benchmarks/bench_tick.py`` prints the figure), and under that benchmark's alert
-storm such a collection landed in about one hour in six. Moving them once to the permanent generation
-(``gc.freeze``, Python 3.7+) takes them out of every later collection; reference counting
-still frees them as usual, only cycles among them would no longer be collected, so a
-collection runs first and the freeze happens once, after the process has settled (the
+storm such a collection landed in about one hour in six. Moving them once to the permanent
+generation (``gc.freeze``, Python 3.7+) takes them out of every later collection; reference
+counting still frees them as usual, only cycles among them would no longer be collected,
+so a collection runs first and the freeze happens once, after the process has settled (the
 first closed hour: state restored, kernels compiled), not per hour.
 """
 

@@ -142,12 +142,19 @@ class PartTimer:
 
 
 class FullCollections:
-    """Full (oldest-generation) collections of the cyclic garbage collector, with their pauses."""
+    """Full (oldest-generation) collections of the cyclic garbage collector inside a ``with``
+    block, with their pauses."""
 
     def __init__(self) -> None:
         self.pauses: list[float] = []
         self._t0 = 0.0
+
+    def __enter__(self) -> FullCollections:
         gc.callbacks.append(self._seen)
+        return self
+
+    def __exit__(self, *_: object) -> None:
+        gc.callbacks.remove(self._seen)
 
     def _seen(self, phase: str, info: dict[str, int]) -> None:
         if info["generation"] != 2:
@@ -194,7 +201,6 @@ def run_ticks(eng: Engine, data: list[np.ndarray], warm: int, ticks: int, seed: 
         eng.step_array(START + timedelta(hours=h), data[h % len(data)])
         print(f"  warm-up hour {h + 1}/{warm}: {(time.perf_counter() - t0) * 1e3:8.1f} ms", flush=True)
     print(settle_heap() if settle else "heap not settled (--no-settle)", flush=True)
-    full = FullCollections()
     timer = PartTimer()
     timer.wrap(eng.joint, "forecast", "joint.forecast")
     timer.wrap(eng.joint, "observe", "joint.observe")
@@ -202,14 +208,14 @@ def run_ticks(eng: Engine, data: list[np.ndarray], warm: int, ticks: int, seed: 
         timer.wrap(eng.baseline, name, "baseline")
     rng = np.random.default_rng(seed + 1)
     alerts = 0
-    for k in range(ticks):
-        h = warm + k
-        x = surge(data[h % len(data)], k, rng)
-        t0 = time.perf_counter()
-        res = eng.step_array(START + timedelta(hours=h), x)
-        timer.close_tick((time.perf_counter() - t0) * 1e3)
-        alerts += len(res.alerts)
-    gc.callbacks.remove(full._seen)
+    with FullCollections() as full:
+        for k in range(ticks):
+            h = warm + k
+            x = surge(data[h % len(data)], k, rng)
+            t0 = time.perf_counter()
+            res = eng.step_array(START + timedelta(hours=h), x)
+            timer.close_tick((time.perf_counter() - t0) * 1e3)
+            alerts += len(res.alerts)
     print(f"full collections during the timed ticks: {len(full.pauses)} "
           f"(pauses {', '.join(f'{p:.1f}' for p in full.pauses) or '-'} ms)")
     return timer, alerts
