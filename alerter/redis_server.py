@@ -16,6 +16,7 @@ import shutil
 import socket
 import subprocess
 import time
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -214,58 +215,135 @@ def _command(port: int, *args: str) -> bytes:
     return reply
 
 
+def _slot_ranges(nodes: bytes) -> Iterator[tuple[int, int, int]]:
+    """(port, first slot, last slot) of each healthy master in a CLUSTER NODES reply (a line per
+    node: id, ip:port@bus, flags, master id, ping, pong, epoch, link state, slot ranges)."""
+    for line in nodes.decode(errors="replace").splitlines()[1:]:
+        fields = line.split()
+        if len(fields) < 9 or "master" not in fields[2].split(",") or "fail" in fields[2]:
+            continue
+        port = int(fields[1].split("@")[0].rsplit(":", 1)[1])
+        for r in fields[8:]:
+            if not r.startswith("["):  # "[slot->-id]": a slot being migrated
+                lo, _, hi = r.partition("-")
+                yield port, int(lo), int(hi or lo)
+
+
 @dataclass
 class LocalCluster:
     """A Redis Cluster of ``masters`` redis-server children on free TCP ports (tests, benchmarks).
 
     Each node runs with ``cluster-enabled yes`` and its own folder; the slots are split into
     equal ranges with CLUSTER ADDSLOTS, the nodes joined with CLUSTER MEET, and ``start``
-    returns once every node reports ``cluster_state:ok``.
+    returns once every node reports ``cluster_state:ok``. With ``replicas`` each master gets
+    that many replicas (CLUSTER REPLICATE), so :meth:`kill_master` can show a failover: a
+    master dies, and once ``node_timeout_ms`` has passed its replica takes over its slots.
     """
 
     data_dir: Path
     masters: int = 3
     splits: tuple[int, ...] = ()  # first slot of each master but the first (default: equal ranges)
-    ports: list[int] = field(default_factory=list)
+    replicas: int = 0  # per master
+    node_timeout_ms: int = 5000
+    ports: list[int] = field(default_factory=list)  # masters first, then the replicas of master 0, 1, ...
     processes: list[subprocess.Popen[bytes]] = field(default_factory=list)
 
     @property
     def url(self) -> str:
-        return f"redis://127.0.0.1:{self.ports[0]}/0"
+        return self.url_of(0)
+
+    def url_of(self, k: int) -> str:
+        """The URL of node ``k`` (a client finds the whole cluster from any live node)."""
+        return f"redis://127.0.0.1:{self.ports[k]}/0"
 
     def start(self, timeout: float = 30.0) -> str:
-        binary = find_server_binary()
         taken: set[int] = set()
-        for k in range(self.masters):
-            port = _free_cluster_port(taken)
-            taken.update((port, port + _BUS_OFFSET))
-            folder = self.data_dir / f"node-{k}"
-            folder.mkdir(parents=True, exist_ok=True)
-            args = [binary, "--port", str(port), "--bind", "127.0.0.1", "--dir", str(folder),
-                    "--cluster-enabled", "yes", "--cluster-config-file", "nodes.conf",
-                    "--cluster-node-timeout", "5000", "--appendonly", "yes", "--save", "",
-                    "--logfile", str(folder / "redis.log")]
-            self.processes.append(subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL))
-            self.ports.append(port)
+        for k in range(self.masters * (1 + self.replicas)):
+            self._spawn(k, taken)
         bounds = [0, *(self.splits or [k * _SLOTS // self.masters for k in range(1, self.masters)]), _SLOTS]
         if len(bounds) != self.masters + 1 or bounds != sorted(bounds):
             raise ServerSetupError(f"splits {self.splits}: need {self.masters - 1} rising slots in 1..16383")
         for k, port in enumerate(self.ports):
-            _wait(lambda p=port: _ping_tcp(p), f"127.0.0.1:{port}", self.data_dir / f"node-{k}" / "redis.log")
-            _command(port, "CLUSTER", "ADDSLOTS", *map(str, range(bounds[k], bounds[k + 1])))
+            _wait(lambda p=port: _ping_tcp(p), f"127.0.0.1:{port}", self._log(k))
+            if k < self.masters:
+                _command(port, "CLUSTER", "ADDSLOTS", *map(str, range(bounds[k], bounds[k + 1])))
         for port in self.ports[1:]:
             _command(port, "CLUSTER", "MEET", "127.0.0.1", str(self.ports[0]))
-        _wait(self._ok, f"cluster {self.ports}", self.data_dir / "node-0" / "redis.log", timeout)
+        _wait(self._ok, f"cluster {self.ports}", self._log(0), timeout)
+        for k in range(self.masters, len(self.ports)):
+            master = self._node_id(self.ports[(k - self.masters) // self.replicas])
+            _wait(lambda p=self.ports[k], m=master: self._replicate(p, m), f"replica 127.0.0.1:{self.ports[k]}",
+                  self._log(k), timeout)
         log.info("redis cluster started ports=%s", self.ports)
         return self.url
 
+    def _spawn(self, k: int, taken: set[int]) -> None:
+        port = _free_cluster_port(taken)
+        taken.update((port, port + _BUS_OFFSET))
+        folder = self.data_dir / f"node-{k}"
+        folder.mkdir(parents=True, exist_ok=True)
+        args = [find_server_binary(), "--port", str(port), "--bind", "127.0.0.1", "--dir", str(folder),
+                "--cluster-enabled", "yes", "--cluster-config-file", "nodes.conf",
+                "--cluster-node-timeout", str(self.node_timeout_ms), "--appendonly", "yes", "--save", "",
+                "--logfile", str(folder / "redis.log")]
+        self.processes.append(subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL))
+        self.ports.append(port)
+
+    def _log(self, k: int) -> Path:
+        return self.data_dir / f"node-{k}" / "redis.log"
+
+    @staticmethod
+    def _node_id(port: int) -> str:
+        return _command(port, "CLUSTER", "MYID").split(b"\r\n")[1].decode()
+
+    @staticmethod
+    def _replicate(port: int, master: str) -> bool:
+        """Ask ``port`` to replicate ``master`` unless it does (it may not know the master yet:
+        then False, and the caller asks again); True once its link to the master is up."""
+        info = _command(port, "INFO", "replication")
+        if b"role:master" in info:
+            try:
+                _command(port, "CLUSTER", "REPLICATE", master)
+            except ServerSetupError:
+                return False
+        return b"master_link_status:up" in info
+
     def _ok(self) -> bool:
         infos = [_command(p, "CLUSTER", "INFO") for p in self.ports]
-        return all(b"cluster_state:ok" in i and b"cluster_known_nodes:%d" % self.masters in i for i in infos)
+        return all(b"cluster_state:ok" in i and b"cluster_known_nodes:%d" % len(self.ports) in i for i in infos)
+
+    def master_of(self, slot: int) -> int:
+        """Index (into :attr:`ports`) of the live node that serves ``slot`` now."""
+        for k, port in enumerate(self.ports):
+            if self.processes[k].poll() is None:
+                for master_port, lo, hi in _slot_ranges(_command(port, "CLUSTER", "NODES")):
+                    if lo <= slot <= hi:
+                        return self.ports.index(master_port)
+        raise ServerSetupError(f"no live cluster node serves slot {slot}")
+
+    def kill_master(self, slot: int, timeout: float = 30.0) -> tuple[int, int]:
+        """SIGKILL the master serving ``slot`` and wait until a replica serves it and every
+        live node reports ``cluster_state:ok``; returns (old, new) node indexes."""
+        old = self.master_of(slot)
+        self.processes[old].kill()
+        self.processes[old].wait(timeout=10)
+        live = [p for k, p in enumerate(self.ports) if self.processes[k].poll() is None]
+
+        def moved() -> bool:
+            try:
+                return self.master_of(slot) != old and all(
+                    b"cluster_state:ok" in _command(p, "CLUSTER", "INFO") for p in live)
+            except (OSError, ServerSetupError):
+                return False
+        _wait(moved, f"failover of slot {slot} from 127.0.0.1:{self.ports[old]}", self._log(old), timeout)
+        new = self.master_of(slot)
+        log.info("redis cluster failover slot=%d from=%d to=%d", slot, self.ports[old], self.ports[new])
+        return old, new
 
     def stop(self) -> None:
         for proc in self.processes:
-            proc.terminate()
+            if proc.poll() is None:
+                proc.terminate()
         for proc in self.processes:
             proc.wait(timeout=10)
         self.processes, self.ports = [], []
