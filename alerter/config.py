@@ -79,6 +79,16 @@ class DirectionRule(_Strict):
     cooldown_hours: int = Field(6, ge=0)
 
 
+class DropRule(DirectionRule):
+    """The drop rule: stricter defaults than a surge's, so a ``drop:`` block that gives only
+    some keys keeps the drop defaults of the others (not the surge rule's)."""
+
+    z: float = Field(5.0, gt=0)
+    min_excess: float = Field(20.0, ge=0)
+    min_ratio: float = Field(1.5, ge=1)
+    min_expected: float = Field(20.0, ge=0)
+
+
 class PartialDirectionRule(_Strict):
     """An override: only the keys given replace the group's defaults."""
 
@@ -110,8 +120,16 @@ class RuleSettings(_Strict):
     """Surge and drop rules; the first matching override wins for a node."""
 
     surge: DirectionRule = DirectionRule()
-    drop: DirectionRule = DirectionRule(z=5.0, min_excess=20.0, min_ratio=1.5, min_expected=20.0)
+    drop: DropRule = DropRule()
     overrides: list[RuleOverride] = []
+
+    @field_validator("drop", mode="before")
+    @classmethod
+    def _drop_from_direction_rule(cls, value: object) -> object:
+        """A plain DirectionRule given in code is taken at its values."""
+        if isinstance(value, DirectionRule) and not isinstance(value, DropRule):
+            return value.model_dump()
+        return value
 
 
 class FlowConfig(_Strict):

@@ -82,3 +82,31 @@ def test_overrides_apply_first_match() -> None:
     assert book.z("surge").tolist() == [7.0, 2.0]
     assert book.rule_name("surge", 0) == "surge:sports" and book.rule_name("surge", 1) == "surge:all"
     assert book.z("drop").tolist() == [5.0, 5.0]
+
+
+def test_a_partial_drop_block_keeps_the_other_drop_defaults() -> None:
+    """``rules.drop`` given with one key changes that key only: its other thresholds stay the
+    drop rule's (z 5, 20 visits, ratio 1.5), not the surge rule's looser ones."""
+    tuned = parse_config("rules:\n  drop:\n    z: 3.5\n", "tuned.yaml").rules
+    default = Config().rules
+    assert tuned.drop.z == 3.5 and default.drop.z == 5.0
+    assert tuned.drop.model_dump(exclude={"z"}) == default.drop.model_dump(exclude={"z"})
+    assert tuned.drop.min_expected != default.surge.min_expected  # the defaults it must not fall back to
+    assert tuned.surge == default.surge
+
+
+def test_every_section_default_is_its_class_default() -> None:
+    """A section's default must equal its class built with no keys: else a YAML block that gives
+    some keys of it silently takes the class's values for the others (as ``rules.drop`` once did)."""
+    from pydantic import BaseModel
+
+    def walk(model: type[BaseModel], path: str) -> int:
+        seen = 0
+        for name, field in model.model_fields.items():
+            default = field.default
+            if isinstance(default, BaseModel):
+                assert default == type(default)(), f"{path}{name}: default differs from {type(default).__name__}()"
+                seen += 1 + walk(type(default), f"{path}{name}.")
+        return seen
+
+    assert walk(Config, "") > 10
