@@ -58,6 +58,18 @@ def _parser() -> argparse.ArgumentParser:
     _common(p)
     p.set_defaults(func=commands.cmd_graph)
 
+    p = sub.add_parser("compare", help="what a proposed config would change: alerts dropped and added, settings")
+    p.add_argument("recording", help="recording file (.jsonl or .jsonl.gz), e.g. last week's")
+    p.add_argument("--config", required=True, metavar="FILE", help="the proposed YAML config")
+    p.add_argument("--base", metavar="FILE", help="the config in use (default: config/default.yaml)")
+    p.add_argument("--labels", metavar="FILE", help="labelled events: mark true alerts, score both")
+    p.add_argument("--since", metavar="HOUR", help="compare alerts from this UTC hour on "
+                   "(default: the labelled period with --labels, else the whole recording)")
+    p.add_argument("--show", type=int, default=40, metavar="N", help="alerts to show per table (default 40)")
+    p.add_argument("--skip-bad", action="store_true", help="report and skip malformed lines")
+    p.add_argument("--json", action="store_true", help="print figures as JSON for scripts")
+    p.set_defaults(func=commands.cmd_compare)
+
     p = sub.add_parser("demo", help="run the bundled demo week (Fernhollow Courier) and score it")
     p.add_argument("--out", metavar="FILE", help="write alerts as JSON Lines to FILE")
     p.add_argument("--show", type=int, default=25, metavar="N", help="alerts to show (default 25)")

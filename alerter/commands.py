@@ -7,12 +7,13 @@ import json
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
-from datetime import timedelta
+from datetime import datetime, timedelta
 from pathlib import Path
 
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
 from . import report
+from .compare import diff_alerts, labelled, setting_changes, side_counts
 from .config import Config, load_config
 from .errors import AlerterError, HourRangeError, RecordingError
 from .records import write_jsonl
@@ -164,6 +165,65 @@ def cmd_explain(args: argparse.Namespace) -> int:
         plot_history(args.node, rows, format_hour(at), args.plot)
         if not args.json:
             print(f"wrote plot to {args.plot}")
+    return 0
+
+
+def _since(text: str | None, what: str) -> datetime | None:
+    if text is None:
+        return None
+    try:
+        return parse_hour(text)
+    except ValueError as exc:
+        raise HourRangeError(f"{what}: {exc}") from None
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    """Replay one recording under the current and the proposed config; what would change."""
+    current, proposed = load_config(args.base), load_config(args.config)
+    recording = Path(args.recording)
+    runs = []
+    for name, cfg in (("current", current), ("proposed", proposed)):
+        with progress_bar(f"replaying with the {name} config", not args.json) as on_hour:
+            runs.append(replay(recording, cfg, skip_bad=args.skip_bad, on_hour=on_hour))
+    _report_bad(runs[0])
+    labels = load_labels(args.labels) if args.labels else None
+    since = _since(args.since, "--since") or (labels.labelled_from if labels else None)
+    diff = diff_alerts(runs[0].alerts, runs[1].alerts, since)
+    changes = setting_changes(current, proposed)
+    counts = [side_counts(r.alerts, r.incidents, since) for r in runs]
+    scores = [score_alerts(r.alerts, labels, c.scoring.slack_hours, r.incidents) if labels else None
+              for r, c in zip(runs, (current, proposed), strict=True)]
+    truth = {name: labelled(alerts, labels, proposed.scoring.slack_hours)
+             for name, alerts in (("dropped", diff.dropped), ("added", diff.added))}
+    if args.json:
+        print(json.dumps({
+            "recording": str(recording), "since": format_hour(since) if since else None,
+            "current_config": args.base or "defaults", "proposed_config": args.config,
+            "settings": [{"key": k, "current": a, "proposed": b} for k, a, b in changes],
+            "current": {**counts[0], "score": scores[0].to_dict() if scores[0] else None},
+            "proposed": {**counts[1], "score": scores[1].to_dict() if scores[1] else None},
+            "kept": len(diff.kept),
+            **{name: [{**a.to_dict(), "labelled_event": t} for a, t in zip(alerts, truth[name], strict=True)]
+               for name, alerts in (("dropped", diff.dropped), ("added", diff.added))},
+        }, indent=2, sort_keys=True))
+        return 0
+    out = report.console()
+    window = f"from {format_hour(since)} on" if since else "over the whole recording"
+    out.print(f"current config: {args.base or 'defaults (config/default.yaml)'}; proposed: {args.config}")
+    out.print(report.settings_table(changes) if changes else "the two configs set every key alike")
+    out.print(report.sides_table(counts, scores, len(diff.kept), window))
+    for name, alerts in (("dropped", diff.dropped), ("added", diff.added)):
+        verdicts = truth[name]
+        if not alerts:
+            out.print(f"no alert {name} by the proposed config")
+            continue
+        out.print(report.alerts_table(list(alerts), args.show, title=f"{name} by the proposed config",
+                                      truth=verdicts if labels else None))
+        if labels:
+            true, false = verdicts.count(True), verdicts.count(False)
+            out.print(f"{name}: {true} on labelled events, {false} false alarm(s)")
+    if labels is None:
+        out.print("give --labels FILE to see which dropped or added alerts fall on labelled events")
     return 0
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from collections.abc import Sequence
 
 from rich.console import Console
@@ -13,7 +14,7 @@ from .records import Alert, NodeHour, SpillWarning, Upstream
 from .scoring import Score
 
 __all__ = ["alerts_table", "score_tables", "history_table", "incidents_table", "decomposition_table",
-           "graph_table", "spills_table", "human"]
+           "graph_table", "spills_table", "settings_table", "sides_table", "human"]
 
 ESTIMATE_NOTE = ("Upstream shares and kinds are estimates from how counts moved together in the past; "
                  "they do not prove cause.")
@@ -28,20 +29,60 @@ def human(value: float | None) -> str:
     return "-" if value is None else human_number(value)
 
 
-def alerts_table(alerts: Sequence[Alert], limit: int = 40) -> Table:
-    """The first ``limit`` alerts, one row each."""
-    title = f"{len(alerts)} alert(s)" + (f", first {limit} shown" if len(alerts) > limit else "")
-    table = Table(title=title, title_justify="left")
-    for name, justify in (("hour (UTC)", "left"), ("node", "left"), ("kind", "left"),
-                          ("observed", "right"), ("expected", "right"), ("band", "right"),
-                          ("change", "right"), ("score", "right"), ("origin", "left"),
-                          ("likely upstream (est.)", "left")):
+def alerts_table(alerts: Sequence[Alert], limit: int = 40, title: str = "",
+                 truth: Sequence[bool | None] | None = None) -> Table:
+    """The first ``limit`` alerts, one row each; with ``truth`` a column saying whether each
+    falls on a labelled event."""
+    head = f"{len(alerts)} alert(s)" + (f" {title}" if title else "")
+    table = Table(title=head + (f", first {limit} shown" if len(alerts) > limit else ""), title_justify="left")
+    columns = [("hour (UTC)", "left"), ("node", "left"), ("kind", "left"), ("observed", "right"),
+               ("expected", "right"), ("band", "right"), ("change", "right"), ("score", "right"),
+               ("origin", "left"), ("likely upstream (est.)", "left")]
+    if truth is not None:
+        columns.append(("labelled event", "left"))
+    for name, justify in columns:
         table.add_column(name, justify=justify)  # type: ignore[arg-type]
-    for a in alerts[:limit]:
-        change = percent_above(a.observed, a.expected)
-        table.add_row(a.hour, a.node, a.kind, human(a.observed), human(a.expected),
-                      f"{human(a.band_low)}..{human(a.band_high)}", change, f"{a.score:+.1f}",
-                      a.origin or "-", upstream_text(a.upstream))
+    for k, a in enumerate(alerts[:limit]):
+        cells = [a.hour, a.node, a.kind, human(a.observed), human(a.expected),
+                 f"{human(a.band_low)}..{human(a.band_high)}", percent_above(a.observed, a.expected),
+                 f"{a.score:+.1f}", a.origin or "-", upstream_text(a.upstream)]
+        if truth is not None:
+            cells.append({True: "yes", False: "no (false alarm)", None: "-"}[truth[k]])
+        table.add_row(*cells)
+    return table
+
+
+def settings_table(changes: Sequence[tuple[str, object, object]]) -> Table:
+    """The settings two configs differ in (dotted keys)."""
+    table = Table(title=f"{len(changes)} setting(s) differ", title_justify="left")
+    for col in ("setting", "current", "proposed"):
+        table.add_column(col)
+    for key, a, b in changes:
+        table.add_row(key, _setting(a), _setting(b))
+    return table
+
+
+def _setting(value: object) -> str:
+    return "(not set)" if value is None else json.dumps(value) if isinstance(value, (list, dict)) else str(value)
+
+
+def sides_table(counts: Sequence[dict[str, int]], scores: Sequence[Score | None], kept: int, window: str) -> Table:
+    """Alerts, incidents and (with labels) the score of the current and the proposed config."""
+    table = Table(title=f"current against proposed config, {window} ({kept} alert(s) in both)",
+                  title_justify="left")
+    for col in ("figure", "current", "proposed", "change"):
+        table.add_column(col, justify="left" if col == "figure" else "right")
+    for name, label in (("alerts", "alerts"), ("surge", "  surges"), ("drop", "  drops"),
+                        ("incidents", "incidents opened (chat threads)")):
+        a, b = counts[0][name], counts[1][name]
+        table.add_row(label, str(a), str(b), f"{b - a:+d}")
+    if scores[0] is not None and scores[1] is not None:
+        for name, value in scores[0].summary.items():
+            if name in ("incidents", "incidents_per_event"):
+                continue
+            other = scores[1].summary.get(name, float("nan"))
+            change = "n/a" if value != value or other != other else f"{other - value:+.2f}"
+            table.add_row(name.replace("_", " "), _pct(value), _pct(other), change)
     return table
 
 

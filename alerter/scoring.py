@@ -19,7 +19,7 @@ from .incidents import IncidentUpdate
 from .records import Alert
 from .timeaxis import parse_hour
 
-__all__ = ["LabelledEvent", "Labels", "Score", "load_labels", "score_alerts"]
+__all__ = ["LabelledEvent", "Labels", "Score", "load_labels", "matches_event", "score_alerts"]
 
 
 @dataclass(frozen=True)
@@ -76,7 +76,9 @@ class Score:
         return {"precision": self.precision, "recall": self.recall, "summary": self.summary}
 
 
-def _matches(alert: Alert, event: LabelledEvent, slack: timedelta) -> bool:
+def matches_event(alert: Alert, event: LabelledEvent, slack: timedelta) -> bool:
+    """True when the alert is on one of the event's nodes, in its direction, between its start
+    and its end plus ``slack`` hours (how the score counts a true alert)."""
     if alert.node not in event.nodes or alert.kind != event.direction:
         return False
     hour = parse_hour(alert.hour)
@@ -106,7 +108,7 @@ def score_alerts(alerts: list[Alert], labels: Labels, slack_hours: int = 3,
         mine = [a for a in scored if a.kind == direction]
         good = 0
         for a in mine:
-            matched = [e for e in wanted if _matches(a, e, slack)]
+            matched = [e for e in wanted if matches_event(a, e, slack)]
             for e in matched:
                 hits[e.id].add(a.node)
                 if e.nodes.get(a.node) == "propagated" and a.origin is not None:

@@ -1,0 +1,110 @@
+"""What a proposed config would change over a recording, against the config in use.
+
+An analyst about to ship a threshold change needs three answers from last week's data:
+which settings the two files really differ in, how many alerts and incidents each would have
+raised, and which alerts the change drops or adds (with labels: were those true events or
+false alarms?). Both configs run the same replay; this module only compares the results.
+
+Alerts are matched by (node, hour, kind). An alert present under both configs counts as
+kept even when its figures differ: a wider band changes the numbers, not the alert.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+from typing import Any
+
+from .config import Config
+from .incidents import IncidentUpdate
+from .records import Alert
+from .scoring import Labels, matches_event
+from .timeaxis import parse_hour
+
+__all__ = ["AlertDiff", "diff_alerts", "labelled", "setting_changes", "side_counts"]
+
+Key = tuple[str, str, str]
+
+
+def _key(a: Alert) -> Key:
+    return a.node, a.hour, a.kind
+
+
+@dataclass(frozen=True)
+class AlertDiff:
+    """The alerts of two runs matched by (node, hour, kind), each list in hour order."""
+
+    kept: tuple[Alert, ...]  # the proposed run's records of the alerts both raised
+    dropped: tuple[Alert, ...]  # raised with the current config only
+    added: tuple[Alert, ...]  # raised with the proposed config only
+
+
+def _window(alerts: Sequence[Alert], since: datetime | None) -> list[Alert]:
+    return [a for a in alerts if since is None or parse_hour(a.hour) >= since]
+
+
+def diff_alerts(current: Sequence[Alert], proposed: Sequence[Alert], since: datetime | None = None) -> AlertDiff:
+    """Match the two runs' alerts from ``since`` on (all of them when None).
+
+    >>> from alerter.records import Alert
+    >>> a = Alert.build(node="/a", hour="2026-11-20T10:00:00Z", kind="surge", observed=90, expected=30,
+    ...                 band_low=10, band_high=60, score=4.0, rule="surge", streak=1)
+    >>> b = Alert.build(node="/b", hour="2026-11-20T11:00:00Z", kind="drop", observed=1, expected=30,
+    ...                 band_low=10, band_high=60, score=-4.0, rule="drop", streak=1)
+    >>> d = diff_alerts([a, b], [a])
+    >>> len(d.kept), [x.node for x in d.dropped], d.added
+    (1, ['/b'], ())
+    """
+    cur, new = _window(current, since), _window(proposed, since)
+    cur_keys, new_keys = {_key(a) for a in cur}, {_key(a) for a in new}
+    order = lambda a: (a.hour, a.node, a.kind)  # noqa: E731 - a sort key
+    return AlertDiff(kept=tuple(sorted((a for a in new if _key(a) in cur_keys), key=order)),
+                     dropped=tuple(sorted((a for a in cur if _key(a) not in new_keys), key=order)),
+                     added=tuple(sorted((a for a in new if _key(a) not in cur_keys), key=order)))
+
+
+def side_counts(alerts: Sequence[Alert], incidents: Sequence[IncidentUpdate],
+                since: datetime | None = None) -> dict[str, int]:
+    """Alerts by kind and incidents opened (what reaches chat: one message each, then updates)."""
+    mine = _window(alerts, since)
+    opened = {u.incident for u in incidents if since is None or parse_hour(u.start) >= since}
+    return {"alerts": len(mine), "surge": sum(a.kind == "surge" for a in mine),
+            "drop": sum(a.kind == "drop" for a in mine), "incidents": len(opened)}
+
+
+def labelled(alerts: Sequence[Alert], labels: Labels | None, slack_hours: int) -> list[bool | None]:
+    """Per alert: True when it falls on a labelled event (its node, direction and hours, as the
+    score counts it), False when not, None when there are no labels or it is before them."""
+    if labels is None:
+        return [None] * len(alerts)
+    slack = timedelta(hours=slack_hours)
+    wanted = [e for e in labels.events if e.alert_expected]
+    return [None if parse_hour(a.hour) < labels.labelled_from else any(matches_event(a, e, slack) for e in wanted)
+            for a in alerts]
+
+
+def _flat(data: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for k, v in data.items():
+        name = f"{prefix}{k}"
+        if isinstance(v, Mapping) and v:
+            out.update(_flat(v, name + "."))
+        else:
+            out[name] = v
+    return out
+
+
+def setting_changes(current: Config, proposed: Config) -> list[tuple[str, Any, Any]]:
+    """``(dotted key, current value, proposed value)`` of every setting that differs, sorted by
+    key; a list (such as ``rules.overrides``) is compared whole.
+
+    >>> from alerter.config import Config
+    >>> base = Config()
+    >>> surge = base.rules.surge.model_copy(update={"cooldown_hours": 12})
+    >>> tuned = base.model_copy(update={"rules": base.rules.model_copy(update={"surge": surge})})
+    >>> setting_changes(base, tuned)
+    [('rules.surge.cooldown_hours', 6, 12)]
+    """
+    a, b = _flat(current.model_dump(mode="json")), _flat(proposed.model_dump(mode="json"))
+    return [(k, a.get(k), b.get(k)) for k in sorted(a.keys() | b.keys()) if a.get(k) != b.get(k)]
