@@ -46,6 +46,12 @@ def add_live_commands(sub: Any, common: Callable[[argparse.ArgumentParser], None
     common(p)
     p.set_defaults(func=cmd_push)
 
+    p = sub.add_parser("record", help="write the input streams in Redis as a recording, for replay")
+    p.add_argument("out", help="recording file to write (.jsonl, or .jsonl.gz to compress)")
+    p.add_argument("--redis", metavar="URL", help="Redis URL (default: live.redis_url, else embedded server)")
+    common(p)
+    p.set_defaults(func=cmd_record)
+
     p = sub.add_parser("run", help="the service: read Redis, close hours, write alerts to the outbox")
     p.add_argument("--until-drained", action="store_true", help="exit once the input stream is empty")
     p.add_argument("--redis", metavar="URL", help="Redis URL (default: live.redis_url, else embedded server)")
@@ -73,6 +79,28 @@ def cmd_push(args: argparse.Namespace) -> int:
     else:
         print(f"pushed {summary.hours} hour(s), {summary.counts} count(s), {summary.edges} edge event(s) "
               f"in {summary.entries} entries to {store.where} in {summary.seconds:.2f} s")
+    return 0
+
+
+def cmd_record(args: argparse.Namespace) -> int:
+    """Every partition's input stream, as the service applied it, into one recording."""
+    from .export import export_streams
+
+    config = load_config(args.config)
+    out = Path(args.out)
+    if not out.parent.is_dir():
+        raise AlerterError(f"{out}: folder {out.parent} does not exist")
+    store = connect(config.live, args.redis)
+    try:
+        summary = export_streams(store, config.live, out, config.clock.timezone)
+    finally:
+        store.close()
+    if args.json:
+        print(json.dumps(summary.to_dict(), sort_keys=True))
+    else:
+        print(f"wrote {summary.hours} hour(s), {summary.counts} count(s) and {summary.edges} edge event(s) "
+              f"from {summary.partitions} partition(s) of {store.where} to {out}; left out {summary.dead} "
+              f"malformed and {summary.late} late of {summary.entries} entries")
     return 0
 
 

@@ -57,6 +57,21 @@ def small_recording(tmp_path: Path, name: str = "small.jsonl") -> Path:
     return write_recording(tmp_path / name, series, surge={"/hot": (200, 6.0)}, edges=[("/", "/hot")])
 
 
+def split_recording(rec: Path, cut: int) -> tuple[Path, Path]:
+    """The recording as two files: hours ``0..cut-1`` (with the link events) and the rest."""
+    lines = [json.loads(line) for line in rec.read_text().splitlines()]
+    header, body = lines[0], lines[1:]
+    counts = [x for x in body if x["type"] == "counts"]
+    first = [x for x in body if x["type"] != "counts"] + counts[:cut]
+    second_header = {**header, "start": counts[cut]["hour"], "hours": header["hours"] - cut}
+    paths = []
+    for name, head, rest in (("a", {**header, "hours": cut}, first), ("b", second_header, counts[cut:])):
+        path = rec.with_name(f"{rec.stem}-{name}.jsonl")
+        path.write_text("".join(json.dumps(x) + "\n" for x in [head, *rest]), encoding="utf-8")
+        paths.append(path)
+    return paths[0], paths[1]
+
+
 def run_workers(url: str, config_file: Path, partitions: tuple[int, ...] = (0, 1)) -> list[dict]:
     """Run one ``alerter run --until-drained`` process per partition (consumer ``w<p>``) at once,
     wait for all, and return each one's JSON summary (a failing one shows its log's end)."""

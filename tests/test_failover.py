@@ -16,7 +16,6 @@ but the sink may already have posted an outbox entry that the redo writes again.
 
 from __future__ import annotations
 
-import json
 import os
 import signal
 import subprocess
@@ -36,7 +35,7 @@ from alerter.replay import replay
 from alerter.store import Store, connect
 
 from .conftest_redis import CLUSTER_SPLITS
-from .helpers import outbox_of, small_recording
+from .helpers import outbox_of, small_recording, split_recording
 
 CONFIG = """\
 live:
@@ -54,21 +53,6 @@ def cluster(tmp_path: Path) -> Iterator[LocalCluster]:
     c.start()
     yield c
     c.stop()
-
-
-def _halves(rec: Path, cut: int) -> tuple[Path, Path]:
-    """The recording as two files: hours ``0..cut-1`` (with the link events) and the rest."""
-    lines = [json.loads(line) for line in rec.read_text().splitlines()]
-    header, body = lines[0], lines[1:]
-    counts = [x for x in body if x["type"] == "counts"]
-    first = [x for x in body if x["type"] != "counts"] + counts[:cut]
-    second_header = {**header, "start": counts[cut]["hour"], "hours": header["hours"] - cut}
-    paths = []
-    for name, head, rest in (("a", {**header, "hours": cut}, first), ("b", second_header, counts[cut:])):
-        path = rec.with_name(f"{rec.stem}-{name}.jsonl")
-        path.write_text("".join(json.dumps(x) + "\n" for x in [head, *rest]), encoding="utf-8")
-        paths.append(path)
-    return paths[0], paths[1]
 
 
 def _caught_up(url: str, proc: subprocess.Popen[bytes], log: Path, timeout: float = 90.0) -> None:
@@ -98,7 +82,7 @@ def test_a_master_killed_under_the_service_loses_and_doubles_nothing(tmp_path: P
     rec = small_recording(tmp_path)
     one = replay(rec, load_config(cfg_file))
     assert one.alerts and one.incidents
-    first, second = _halves(rec, 150)  # the surge ('/hot' x6 at hour 200) is in the second half
+    first, second = split_recording(rec, 150)  # the surge ('/hot' x6 at hour 200) is in the second half
     url = cluster.url
     assert main(["push", str(first), "--redis", url, "--config", str(cfg_file), "--json"]) == 0
 
