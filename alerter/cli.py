@@ -34,6 +34,9 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--labels", metavar="FILE", help="score the alerts against labelled events")
     p.add_argument("--skip-bad", action="store_true", help="report and skip malformed lines instead of stopping")
     p.add_argument("--show", type=int, default=40, metavar="N", help="alerts to show in the table (default 40)")
+    p.add_argument("--since", metavar="HOUR", help="show and write only what happened from this UTC hour on "
+                   "(the engine still learns from the whole recording)")
+    p.add_argument("--until", metavar="HOUR", help="... up to and including this UTC hour")
     _common(p)
     p.set_defaults(func=commands.cmd_replay)
 

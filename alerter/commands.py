@@ -7,6 +7,7 @@ import json
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
+from dataclasses import replace
 from datetime import datetime, timedelta
 from pathlib import Path
 
@@ -55,13 +56,15 @@ def own_only(config: Config) -> Config:
 
 
 def present(result: ReplayResult, recording: Path, args: argparse.Namespace, config: Config,
-            labels: Path | None, compare_own_only: bool = False) -> int:
-    """Write alerts, then print tables (or one JSON object) and the score against labels."""
+            labels: Path | None, compare_own_only: bool = False, score_from: ReplayResult | None = None) -> int:
+    """Write alerts, then print tables (or one JSON object) and the score against labels
+    (of ``score_from`` when given: a window's result is scored over the labelled period)."""
     if args.out:
         write_jsonl(args.out, result.alerts)
     lab = load_labels(labels) if labels else None
     slack = config.scoring.slack_hours
-    score = score_alerts(result.alerts, lab, slack, result.incidents) if lab else None
+    scored = score_from or result
+    score = score_alerts(scored.alerts, lab, slack, scored.incidents) if lab else None
     baseline_only = None
     if lab is not None and compare_own_only and config.flows.enabled:
         own = replay(recording, own_only(config))
@@ -92,13 +95,30 @@ def present(result: ReplayResult, recording: Path, args: argparse.Namespace, con
     return 0
 
 
+def windowed(result: ReplayResult, since: datetime | None, until: datetime | None) -> ReplayResult:
+    """The result with only the alerts, incident updates and spill-over warnings of the hours
+    ``since <= hour <= until`` (either end open when None); the engine ran over everything."""
+    def inside(hour: str) -> bool:
+        h = parse_hour(hour)
+        return (since is None or h >= since) and (until is None or h <= until)
+    return replace(result, alerts=[a for a in result.alerts if inside(a.hour)],
+                   incidents=[u for u in result.incidents if inside(u.hour)],
+                   spills=[w for w in result.spills if inside(w.hour)])
+
+
 def cmd_replay(args: argparse.Namespace) -> int:
     config = load_config(args.config)
     recording = Path(args.recording)
+    since, until = _hour_option(args.since, "--since"), _hour_option(args.until, "--until")
+    if since is not None and until is not None and until < since:
+        raise HourRangeError(f"--until {args.until} is before --since {args.since}")
     with progress_bar("replaying hours", not args.json) as on_hour:
         result = replay(recording, config, skip_bad=args.skip_bad, on_hour=on_hour)
     _report_bad(result)
-    return present(result, recording, args, config, Path(args.labels) if args.labels else None)
+    labels = Path(args.labels) if args.labels else None
+    if since is None and until is None:
+        return present(result, recording, args, config, labels)
+    return present(windowed(result, since, until), recording, args, config, labels, score_from=result)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -168,7 +188,7 @@ def cmd_explain(args: argparse.Namespace) -> int:
     return 0
 
 
-def _since(text: str | None, what: str) -> datetime | None:
+def _hour_option(text: str | None, what: str) -> datetime | None:
     if text is None:
         return None
     try:
@@ -187,7 +207,7 @@ def cmd_compare(args: argparse.Namespace) -> int:
             runs.append(replay(recording, cfg, skip_bad=args.skip_bad, on_hour=on_hour))
     _report_bad(runs[0])
     labels = load_labels(args.labels) if args.labels else None
-    since = _since(args.since, "--since") or (labels.labelled_from if labels else None)
+    since = _hour_option(args.since, "--since") or (labels.labelled_from if labels else None)
     diff = diff_alerts(runs[0].alerts, runs[1].alerts, since)
     changes = setting_changes(current, proposed)
     counts = [side_counts(r.alerts, r.incidents, since) for r in runs]

@@ -129,6 +129,8 @@ def recording_lines(hours: Sequence[ClosedHour], trailing: Sequence[EdgeChange],
 
 @dataclass
 class ExportSummary:
+    """What one export read and wrote."""
+
     hours: int = 0
     counts: int = 0
     edges: int = 0

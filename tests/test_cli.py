@@ -102,3 +102,24 @@ def test_graph_lists_neighbours_with_learned_shares(tmp_path: Path, capsys: pyte
     assert main(["graph", "/nope", str(rec)]) == 2
     assert "unknown node '/nope'" in capsys.readouterr().err
     assert main(["graph", "/", str(rec), "--hops", "0"]) == 2
+
+
+def test_replay_window_shows_and_writes_one_day_and_scores_the_labelled_week(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """``--since/--until`` cut what is shown and written, not what the engine learns from:
+    the day's alerts are the whole replay's alerts of that day, byte for byte, and the score
+    (over the labelled week) is the whole replay's."""
+    from alerter.commands import DEMO_LABELS, DEMO_RECORDING
+
+    whole, day = tmp_path / "whole.jsonl", tmp_path / "day.jsonl"
+    assert main(["replay", str(DEMO_RECORDING), "--out", str(whole), "--labels", str(DEMO_LABELS), "--json"]) == 0
+    full = json.loads(capsys.readouterr().out)
+    assert main(["replay", str(DEMO_RECORDING), "--out", str(day), "--labels", str(DEMO_LABELS), "--json",
+                 "--since", "2026-11-18T00:00:00Z", "--until", "2026-11-18T23:00:00Z"]) == 0
+    cut = json.loads(capsys.readouterr().out)
+    expected = [line for line in whole.read_text().splitlines() if '"hour":"2026-11-18T' in line]
+    assert expected and day.read_text().splitlines() == expected and cut["alerts"] == len(expected)
+    assert cut["score"] == full["score"] and full["alerts"] > len(expected)
+    assert main(["replay", str(DEMO_RECORDING), "--since", "2026-11-19T00:00:00Z",
+                 "--until", "2026-11-18T00:00:00Z"]) == 2
+    assert "before --since" in capsys.readouterr().err
