@@ -69,6 +69,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--since", metavar="HOUR", help="compare alerts from this UTC hour on "
                    "(default: the labelled period with --labels, else the whole recording)")
     p.add_argument("--show", type=int, default=40, metavar="N", help="alerts to show per table (default 40)")
+    p.add_argument("--plot", metavar="PNG", help="also draw both configs' alerts along time to a PNG file")
     p.add_argument("--skip-bad", action="store_true", help="report and skip malformed lines")
     p.add_argument("--json", action="store_true", help="print figures as JSON for scripts")
     p.set_defaults(func=commands.cmd_compare)

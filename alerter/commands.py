@@ -215,6 +215,13 @@ def cmd_compare(args: argparse.Namespace) -> int:
               for r, c in zip(runs, (current, proposed), strict=True)]
     truth = {name: labelled(alerts, labels, proposed.scoring.slack_hours)
              for name, alerts in (("dropped", diff.dropped), ("added", diff.added))}
+    if args.plot:
+        from .plots import plot_comparison
+
+        events = [(e.start, e.end) for e in labels.events if since is None or e.end >= since] if labels else []
+        plot_comparison(diff.kept, diff.dropped, diff.added, truth if labels else {}, events,
+                        f"{args.config} against {args.base or 'defaults'}: {len(diff.dropped)} dropped, "
+                        f"{len(diff.added)} added, {len(diff.kept)} in both", args.plot)
     if args.json:
         print(json.dumps({
             "recording": str(recording), "since": format_hour(since) if since else None,
@@ -244,6 +251,8 @@ def cmd_compare(args: argparse.Namespace) -> int:
             out.print(f"{name}: {true} on labelled events, {false} false alarm(s)")
     if labels is None:
         out.print("give --labels FILE to see which dropped or added alerts fall on labelled events")
+    if args.plot:
+        out.print(f"wrote plot to {args.plot}")
     return 0
 
 

@@ -80,8 +80,13 @@ def test_text_output_and_bad_input(tmp_path: Path, capsys: pytest.CaptureFixture
     rec = small_recording(tmp_path)
     proposed = tmp_path / "strict.yaml"
     proposed.write_text(STRICT_SURGES)
-    assert main(["compare", str(rec), "--config", str(proposed)]) == 0
+    png = tmp_path / "compare.png"
+    assert main(["compare", str(rec), "--config", str(proposed), "--plot", str(png)]) == 0
     text = capsys.readouterr().out
+    assert f"wrote plot to {png}" in text
+    import matplotlib.image
+
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and matplotlib.image.imread(png).shape[:2] == (320, 1200)
     assert "1 setting(s) differ" in text and "rules.surge.z" in text
     assert "dropped by the proposed config" in text and "no alert added by the proposed config" in text
     assert main(["compare", str(rec), "--config", str(proposed), "--since", "yesterday"]) == 2
