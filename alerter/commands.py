@@ -14,7 +14,7 @@ from pathlib import Path
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
 from . import report
-from .compare import diff_alerts, labelled, setting_changes, side_counts
+from .compare import Comparison, compare_runs
 from .config import Config, load_config
 from .errors import AlerterError, HourRangeError, RecordingError
 from .records import write_jsonl
@@ -208,52 +208,43 @@ def cmd_compare(args: argparse.Namespace) -> int:
     _report_bad(runs[0])
     labels = load_labels(args.labels) if args.labels else None
     since = _hour_option(args.since, "--since") or (labels.labelled_from if labels else None)
-    diff = diff_alerts(runs[0].alerts, runs[1].alerts, since)
-    changes = setting_changes(current, proposed)
-    counts = [side_counts(r.alerts, r.incidents, since) for r in runs]
-    scores = [score_alerts(r.alerts, labels, c.scoring.slack_hours, r.incidents) if labels else None
-              for r, c in zip(runs, (current, proposed), strict=True)]
-    truth = {name: labelled(alerts, labels, proposed.scoring.slack_hours)
-             for name, alerts in (("dropped", diff.dropped), ("added", diff.added))}
+    cmp = compare_runs(current, proposed, [(r.alerts, r.incidents) for r in runs], labels, since)
+    names = (args.base or "defaults", args.config)
     if args.plot:
         from .plots import plot_comparison
 
+        d = cmp.diff
         events = [(e.start, e.end) for e in labels.events if since is None or e.end >= since] if labels else []
-        plot_comparison(diff.kept, diff.dropped, diff.added, truth if labels else {}, events,
-                        f"{args.config} against {args.base or 'defaults'}: {len(diff.dropped)} dropped, "
-                        f"{len(diff.added)} added, {len(diff.kept)} in both", args.plot)
+        plot_comparison(d.kept, d.dropped, d.added, cmp.truth if labels else {}, events,
+                        f"{names[1]} against {names[0]}: {len(d.dropped)} dropped, {len(d.added)} added, "
+                        f"{len(d.kept)} in both", args.plot)
     if args.json:
-        print(json.dumps({
-            "recording": str(recording), "since": format_hour(since) if since else None,
-            "current_config": args.base or "defaults", "proposed_config": args.config,
-            "settings": [{"key": k, "current": a, "proposed": b} for k, a, b in changes],
-            "current": {**counts[0], "score": scores[0].to_dict() if scores[0] else None},
-            "proposed": {**counts[1], "score": scores[1].to_dict() if scores[1] else None},
-            "kept": len(diff.kept),
-            **{name: [{**a.to_dict(), "labelled_event": t} for a, t in zip(alerts, truth[name], strict=True)]
-               for name, alerts in (("dropped", diff.dropped), ("added", diff.added))},
-        }, indent=2, sort_keys=True))
+        print(json.dumps({"recording": str(recording), "current_config": names[0], "proposed_config": names[1],
+                          **cmp.to_dict()}, indent=2, sort_keys=True))
         return 0
+    _print_comparison(cmp, args, labelled_run=labels is not None)
+    if args.plot:
+        print(f"wrote plot to {args.plot}")
+    return 0
+
+
+def _print_comparison(cmp: Comparison, args: argparse.Namespace, labelled_run: bool) -> None:
     out = report.console()
-    window = f"from {format_hour(since)} on" if since else "over the whole recording"
+    window = f"from {format_hour(cmp.since)} on" if cmp.since else "over the whole recording"
     out.print(f"current config: {args.base or 'defaults (config/default.yaml)'}; proposed: {args.config}")
-    out.print(report.settings_table(changes) if changes else "the two configs set every key alike")
-    out.print(report.sides_table(counts, scores, len(diff.kept), window))
-    for name, alerts in (("dropped", diff.dropped), ("added", diff.added)):
-        verdicts = truth[name]
+    out.print(report.settings_table(cmp.settings) if cmp.settings else "the two configs set every key alike")
+    out.print(report.sides_table(cmp.counts, cmp.scores, len(cmp.diff.kept), window))
+    for name, alerts in (("dropped", cmp.diff.dropped), ("added", cmp.diff.added)):
+        verdicts = cmp.truth[name]
         if not alerts:
             out.print(f"no alert {name} by the proposed config")
             continue
         out.print(report.alerts_table(list(alerts), args.show, title=f"{name} by the proposed config",
-                                      truth=verdicts if labels else None))
-        if labels:
-            true, false = verdicts.count(True), verdicts.count(False)
-            out.print(f"{name}: {true} on labelled events, {false} false alarm(s)")
-    if labels is None:
+                                      truth=verdicts if labelled_run else None))
+        if labelled_run:
+            out.print(f"{name}: {verdicts.count(True)} on labelled events, {verdicts.count(False)} false alarm(s)")
+    if not labelled_run:
         out.print("give --labels FILE to see which dropped or added alerts fall on labelled events")
-    if args.plot:
-        out.print(f"wrote plot to {args.plot}")
-    return 0
 
 
 def cmd_scenario(args: argparse.Namespace) -> int:

@@ -19,10 +19,10 @@ from typing import Any
 from .config import Config
 from .incidents import IncidentUpdate
 from .records import Alert
-from .scoring import Labels, matches_event
-from .timeaxis import parse_hour
+from .scoring import Labels, Score, matches_event, score_alerts
+from .timeaxis import format_hour, parse_hour
 
-__all__ = ["AlertDiff", "diff_alerts", "labelled", "setting_changes", "side_counts"]
+__all__ = ["AlertDiff", "Comparison", "compare_runs", "diff_alerts", "labelled", "setting_changes", "side_counts"]
 
 Key = tuple[str, str, str]
 
@@ -108,3 +108,40 @@ def setting_changes(current: Config, proposed: Config) -> list[tuple[str, Any, A
     """
     a, b = _flat(current.model_dump(mode="json")), _flat(proposed.model_dump(mode="json"))
     return [(k, a.get(k), b.get(k)) for k in sorted(a.keys() | b.keys()) if a.get(k) != b.get(k)]
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """Everything ``alerter compare`` shows: per side (current, proposed) its counts and score."""
+
+    since: datetime | None
+    settings: list[tuple[str, Any, Any]]
+    diff: AlertDiff
+    counts: tuple[dict[str, int], dict[str, int]]
+    scores: tuple[Score | None, Score | None]
+    truth: dict[str, list[bool | None]]  # "dropped" / "added": per alert, on a labelled event?
+
+    def to_dict(self) -> dict[str, Any]:
+        sides = {name: {**c, "score": s.to_dict() if s else None}
+                 for name, c, s in zip(("current", "proposed"), self.counts, self.scores, strict=True)}
+        lists = {name: [{**a.to_dict(), "labelled_event": t}
+                        for a, t in zip(alerts, self.truth[name], strict=True)]
+                 for name, alerts in (("dropped", self.diff.dropped), ("added", self.diff.added))}
+        return {"since": format_hour(self.since) if self.since else None, "kept": len(self.diff.kept),
+                "settings": [{"key": k, "current": a, "proposed": b} for k, a, b in self.settings],
+                **sides, **lists}
+
+
+Run = tuple[Sequence[Alert], Sequence[IncidentUpdate]]  # a replay's alerts and incident updates
+
+
+def compare_runs(current: Config, proposed: Config, runs: Sequence[Run], labels: Labels | None,
+                 since: datetime | None) -> Comparison:
+    """Compare the (alerts, incident updates) of a replay under each config. Both sides are
+    scored with the proposed config's ``scoring.slack_hours``, so only the rules differ."""
+    slack = proposed.scoring.slack_hours
+    diff = diff_alerts(runs[0][0], runs[1][0], since)
+    counts = (side_counts(*runs[0], since), side_counts(*runs[1], since))
+    scores = tuple(score_alerts(list(a), labels, slack, list(u)) if labels else None for a, u in runs)
+    truth = {"dropped": labelled(diff.dropped, labels, slack), "added": labelled(diff.added, labels, slack)}
+    return Comparison(since, setting_changes(current, proposed), diff, counts, (scores[0], scores[1]), truth)

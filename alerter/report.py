@@ -68,8 +68,7 @@ def _setting(value: object) -> str:
 
 def sides_table(counts: Sequence[dict[str, int]], scores: Sequence[Score | None], kept: int, window: str) -> Table:
     """Alerts, incidents and (with labels) the score of the current and the proposed config."""
-    table = Table(title=f"current against proposed config, {window} ({kept} alert(s) in both)",
-                  title_justify="left")
+    table = Table(title=f"{window}: {kept} alert(s) in both", title_justify="left")
     for col in ("figure", "current", "proposed", "change"):
         table.add_column(col, justify="left" if col == "figure" else "right")
     for name, label in (("alerts", "alerts"), ("surge", "  surges"), ("drop", "  drops"),
