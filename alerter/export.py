@@ -14,7 +14,7 @@ stream).
 The reading and merging are pure (:func:`partition_hours`, :func:`merge_hours`,
 :func:`recording_lines`); :func:`export_streams` is the thin Redis adapter around them. All
 hours are held in memory until the end, because a count may arrive after a later hour's
-first entries (within the close grace): about 8 bytes per count.
+first entries (within the close grace).
 """
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ import gzip
 import json
 import math
 from collections.abc import Callable, Iterable, Iterator, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any, TextIO
@@ -60,6 +60,7 @@ class PartitionHours:
 def partition_hours(entries: Iterable[Entry], late_ids: set[bytes], max_bytes: int) -> PartitionHours:
     """Decode one partition's entries in stream order into hours (the service's bucket rules)."""
     out, buckets = PartitionHours(), HourBuckets()
+    seen: dict[str, str] = {}  # one string object per node id: held hours cost ~16 bytes a count, not ~70
     for eid, fields in entries:
         out.entries += 1
         if eid in late_ids:
@@ -73,7 +74,8 @@ def partition_hours(entries: Iterable[Entry], late_ids: set[bytes], max_bytes: i
         if isinstance(decoded, EdgeChange):
             buckets.add_edge(decoded)
         else:
-            buckets.add(decoded)  # nothing closes before the end, so nothing is late here
+            nodes = [seen.setdefault(node, node) for node in decoded.nodes]
+            buckets.add(replace(decoded, nodes=nodes))  # nothing closes before the end: nothing is late here
     out.hours = list(buckets.close_all())
     out.trailing = buckets.take_trailing_edges()
     return out
