@@ -73,9 +73,11 @@ in-edges do not learn; a source with missing ``x`` contributes ``u = 0`` that ho
 State and settings: :class:`FlowSettings` (frozen, stored as given) and :class:`FlowState`
 (plain arrays; pickles into checkpoints) live in :mod:`alerter.flow_state`, with the pure
 helpers and how the per-edge state follows a changed edge list; they are re-exported here.
-History is kept per node -- the last
-``max(L, own_lag)`` hours of cleaned excess and baseline, shape ``(H, n_nodes)`` -- and the
-lagged per-edge inputs are regathered through ``src``; it therefore survives edge changes.
+The generic step above (any lags, own lag, either step schedule) is :mod:`alerter.flow_step`;
+this module keeps the learner, its inputs and the faster forms of the default path. History
+is kept per node -- the last ``max(L, own_lag)`` hours of cleaned excess and baseline, shape
+``(H, n_nodes)`` -- and the lagged per-edge inputs are regathered through ``src``; it
+therefore survives edge changes.
 
 Public API
 ----------
@@ -110,7 +112,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from . import flow_kernels
+from . import flow_kernels, flow_step
 from .attribution import Attribution, cap_contributions
 from .edge_runs import Segments, index_array, sum_by
 from .flow_state import (
@@ -125,6 +127,7 @@ from .flow_state import (
     match_edges,
     persistence_forecast,
 )
+from .flow_step import TINY
 
 __all__ = [
     "OLD_AFTER_TAUS",
@@ -140,7 +143,6 @@ __all__ = [
     "persistence_forecast",
 ]
 
-_TINY = 1e-30
 KERNEL = "numba" if flow_kernels.AVAILABLE else "numpy"
 """Which implementation the default path's hour uses (see :mod:`alerter.flow_kernels`)."""
 
@@ -405,120 +407,9 @@ class FlowLearner:
         self._push(e, b0)
         return FlowStep(predicted=predicted, attribution=attribution, updated=ok)
 
-    def _rates(self, hours: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """(step size, scale rate) for coordinates with ``hours`` updates before this one."""
-        s = self.settings
-        if s.forgetting:
-            step = np.full(hours.shape, s.step, dtype=float)
-        else:
-            step = s.step0 * (1.0 + hours / s.step_t0_hours) ** (-s.step_power)
-        rate = np.maximum(1.0 / (hours + 1.0), s.scale_rate)
-        return step, rate
-
     def _learn(self, u: np.ndarray, own: np.ndarray, err: np.ndarray, ok: np.ndarray) -> None:
-        """One normalised, preconditioned, projected gradient step on the observed destinations."""
-        st, s = self.state, self.settings
-        m_e = ok[st.dst]
-        step_e, rate_e = self._rates(st.edge_hours)
-        step_e *= m_e
-        rate_e *= m_e
-        step_n, rate_n = self._rates(st.node_hours)
-        step_n *= ok
-        if s.own_lag:
-            st.phi_scale += (rate_n * ok) * (own * own - st.phi_scale)
-        if s.precondition:
-            v_beta, v_own, quad = self._block_direction(u, own, m_e, rate_e)
-        else:
-            v_beta, v_own, quad = self._plain_direction(u, own)
-        gain = err / self._normaliser(quad, step_e, step_n, rate_n * ok)  # per node
-        v_beta *= step_e * gain[st.dst]
-        st.beta += v_beta
-        self._pull_to_prior(step_e)
-        np.clip(st.beta, s.beta_min, s.beta_max, out=st.beta)
-        self._apply_cap(st.beta)
-        st.edge_hours += m_e
-        if s.own_lag:
-            st.phi += step_n * gain * v_own
-            np.clip(st.phi, s.own_min, s.own_max, out=st.phi)
-        st.node_hours += ok
-        if not s.forgetting:
-            self._average(st.beta_avg, st.beta, st.edge_hours, m_e)
-            if s.own_lag:
-                self._average(st.phi_avg, st.phi, st.node_hours, ok)
-        st.hours += 1
-
-    def _normaliser(self, quad: np.ndarray, step_e: np.ndarray, step_n: np.ndarray,
-                    rate_n: np.ndarray) -> np.ndarray:
-        """``eps + max(mean quad, mu_max * quad)`` per destination.
-
-        Dividing by the running mean of ``quad`` (not the hour's own value) keeps the fixed
-        point at ordinary least squares; dividing by the hour's ``quad`` (NLMS) would solve a
-        least-squares problem weighted by ``1 / quad``, which down-weights the most
-        informative hours. The ``mu_max * quad`` floor (``mu_max`` the largest step into the
-        destination this hour) keeps every step at most a full normalised step, so a
-        high-leverage hour cannot overshoot; as the steps decrease it binds ever more rarely.
-        """
-        st = self.state
-        st.quad_mean += rate_n * (quad - st.quad_mean)
-        mu_max = np.array(step_n, dtype=float)
-        np.maximum.at(mu_max, st.dst, step_e)
-        norm = np.maximum(st.quad_mean, mu_max * quad)
-        norm += self.settings.eps
-        return norm
-
-    def _plain_direction(self, u: np.ndarray, own: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Textbook NLMS: direction = inputs, normaliser = sum of squared inputs per destination."""
-        st = self.state
-        quad = sum_by(st.dst, np.einsum("ke,ke->e", u, u, dtype=float), st.n_nodes)
-        if self.settings.own_lag:
-            quad += own.astype(float) ** 2
-        return np.array(u, dtype=self.dtype), own.astype(float), quad
-
-    def _block_direction(self, u: np.ndarray, own: np.ndarray, m_e: np.ndarray,
-                         rate_e: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Per-edge block preconditioner: direction ``P_e z_e``, ``P_e`` the inverse of the edge's
-        running (ridged) input covariance over ``z_e = [u_e(t-0..L), own_dst]``.
-
-        The metric ``M = sum_e E_e^T P_e E_e`` (plus a scalar block for the own coefficient of a
-        node without in-edges) is symmetric positive definite, so the fixed point is the
-        least-squares one; ``quad = z^T M z`` per destination is the NLMS normaliser.
-        """
-        st, s = self.state, self.settings
-        k = s.lags + 1
-        z = self._get("z", (st.n_edges, s.block_size))
-        z[:, :k] = u.T
-        if s.own_lag:
-            np.take(own, st.dst, out=z[:, k])
-        z *= m_e[:, None]  # unobserved destinations: zero input, zero step
-        st.cov += rate_e[:, None, None] * (z[:, :, None] * z[:, None, :] - st.cov)
-        v = self._solve(st.cov, z)
-        quad = sum_by(st.dst, np.einsum("ed,ed->e", z, v, dtype=float), st.n_nodes)
-        v_own = np.zeros(st.n_nodes)
-        if s.own_lag:
-            v_own += sum_by(st.dst, v[:, k], st.n_nodes)
-            lonely = np.bincount(st.dst, minlength=st.n_nodes) == 0
-            own_v = np.where(lonely, own / (st.phi_scale + _TINY), 0.0)
-            v_own += own_v
-            quad += own_v * own
-        return np.ascontiguousarray(v[:, :k].T), v_own, quad
-
-    def _solve(self, cov: np.ndarray, z: np.ndarray) -> np.ndarray:
-        """``(cov_e + ridge * tr(cov_e) / d * I)^-1 z_e`` for every edge at once."""
-        d = cov.shape[1]
-        ridge = np.trace(cov, axis1=1, axis2=2) * (self.settings.ridge / d) + _TINY
-        if d == 1:
-            return z / (cov[:, 0, :] * (1.0 + self.settings.ridge) + _TINY)
-        a = cov + ridge[:, None, None] * np.eye(d, dtype=cov.dtype)
-        return np.linalg.solve(a, z[:, :, None])[:, :, 0]
-
-    def _pull_to_prior(self, step_e: np.ndarray) -> None:
-        st, s = self.state, self.settings
-        if s.prior_pull <= 0:
-            return
-        w = step_e * s.prior_pull * np.exp(-st.edge_hours / s.prior_hours)
-        st.beta[0] += w * (s.prior - st.beta[0])
-        if s.lags:
-            st.beta[1:] -= w * st.beta[1:]
+        """One step of the generic path (:func:`alerter.flow_step.learn`)."""
+        flow_step.learn(self.state, self.settings, u, own, err, ok, self._get, self._apply_cap)
 
     def _apply_cap(self, beta: np.ndarray) -> None:
         """Scale each source's positive coefficients so their sum is at most ``cap``."""
@@ -529,11 +420,6 @@ class FlowLearner:
         factor = self._cap_factor(sum_by(st.src, pos.sum(axis=0, dtype=float), st.n_nodes))
         if factor is not None:
             np.multiply(beta, factor[st.src], out=beta, where=beta > 0)
-
-    def _average(self, avg: np.ndarray, cur: np.ndarray, hours: np.ndarray, mask: np.ndarray) -> None:
-        eta = self.settings.average_eta
-        w = (1.0 + eta) / (hours + eta) * mask
-        avg += w * (cur - avg)
 
     def _push(self, e: np.ndarray, b: np.ndarray) -> None:
         st, h = self.state, self.settings.history_hours
@@ -660,7 +546,7 @@ class FlowLearner:
             seg.blocks(), seg.indptr, st.src, np.stack([e, b0], axis=1), ok, sign, st.beta[0], st.cov.reshape(-1),
             st.edge_hours,
             ages, a0, a1, 1.0 / s.age_tau_hours if weighted else 0.0, table, self._hour_table("rate"), pull,
-            s.ridge, _TINY, s.prior, s.beta_min, s.beta_max, s.step, s.eps, s.scale_rate,
+            s.ridge, TINY, s.prior, s.beta_min, s.beta_max, s.step, s.eps, s.scale_rate,
             st.quad_mean, st.node_hours, raw, inflow, part_sum, totals, scratch)
         factor = None if s.cap is None else self._cap_factor(totals.sum(axis=0))
         if factor is not None:
@@ -682,7 +568,7 @@ class FlowLearner:
         st, s = self.state, self.settings
         quad = np.zeros(st.n_nodes)
         flow_kernels.direction(u, ok, st.dst, st.cov.reshape(-1), st.edge_hours, self._hour_table("rate"),
-                          s.ridge, _TINY, quad)
+                          s.ridge, TINY, quad)
         gain = self._gain_lag0(quad, err, ok) * s.step
         totals = np.zeros(st.n_nodes)
         pull = self._hour_table("pull") if s.prior_pull > 0 else np.zeros(1, self.dtype)
@@ -710,7 +596,7 @@ class FlowLearner:
         tmp *= rate
         cov += tmp
         v = np.multiply(cov, 1.0 + s.ridge, out=tmp)  # v = z / (cov (1 + ridge) + tiny)
-        v += _TINY
+        v += TINY
         np.divide(u, v, out=v)
         gain = self._gain_lag0(seg.sum(np.multiply(u, v, out=rate)), err, ok)
         v *= seg.expand(s.step * gain, self.dtype)
@@ -731,7 +617,7 @@ class FlowLearner:
     def _gain_lag0(self, quad: np.ndarray, err: np.ndarray, ok: np.ndarray) -> np.ndarray:
         """Per destination ``err / norm``; with a constant step ``mu_max`` is the node's own step."""
         st, s = self.state, self.settings
-        step_n, rate_n = self._rates(st.node_hours)
+        step_n, rate_n = flow_step.rates(s, st.node_hours)
         step_n *= ok
         rate_n *= ok
         st.quad_mean += rate_n * (quad - st.quad_mean)
