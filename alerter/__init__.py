@@ -10,6 +10,7 @@ baseline; they do not prove what caused it.
 """
 
 from .baseline import BaselineState, SeasonalBaseline
+from .compare import Comparison, compare_runs
 from .config import Config, load_config, parse_config
 from .engine import Engine, StepResult
 from .errors import AlerterError, ConfigError, HourRangeError, LabelsError, RecordingError, UnknownNodeError
@@ -23,6 +24,7 @@ __all__ = [
     "Alert",
     "AlerterError",
     "BaselineState",
+    "Comparison",
     "Config",
     "ConfigError",
     "Engine",
@@ -37,6 +39,7 @@ __all__ = [
     "SeasonalBaseline",
     "StepResult",
     "UnknownNodeError",
+    "compare_runs",
     "load_config",
     "load_labels",
     "parse_config",
