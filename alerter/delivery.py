@@ -55,7 +55,7 @@ from .sinks import Outgoing, Sent, Sink, build_sink
 from .store import check_one_slot, id_key
 
 __all__ = ["TokenBucket", "backoff_seconds", "retry_wait", "severity_of", "in_quiet_hours", "pick_route",
-           "SinkWorker", "run_delivery", "sink_keys", "stats_bucket", "alert_from_json", "options_of"]
+           "SinkWorker", "sink_keys", "stats_bucket", "alert_from_json", "options_of"]
 
 log = logging.getLogger(__name__)
 # Defined here, next to its only use (constants.py belongs to the live path): per sink and
@@ -473,19 +473,3 @@ class SinkWorker:
     def flush_fold(self) -> str | None:
         """Send the held-back summary when the rate limit has a token for it."""
         return flush_fold(self)
-
-
-def run_delivery(config: Config, store: Any, *, drained: bool = False, partitions: list[int] | None = None,
-                 stop: threading.Event | None = None) -> list[SinkWorker]:
-    """One thread per (enabled sink, partition): a slow sink never holds up another."""
-    stop = stop or threading.Event()
-    parts = partitions if partitions is not None else list(range(config.live.partitions))
-    workers = [SinkWorker(config, t, store, partition=p, stop=stop)
-               for t in config.sinks.targets if t.enabled for p in parts]
-    threads = [threading.Thread(target=w.run, kwargs={"drained": drained}, name=f"sink-{w.target.name}")
-               for w in workers]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join()
-    return workers

@@ -14,7 +14,8 @@ from typing import Any
 
 from .config import Config, load_config
 from .constants import partition_name
-from .delivery import SinkKeys, run_delivery, sink_keys
+from .delivery import SinkKeys, sink_keys
+from .delivery_threads import run_delivery
 from .digest import start_digest_job
 from .errors import AlerterError, SinkError
 from .incidents import IncidentUpdate
