@@ -117,4 +117,8 @@ def test_a_master_killed_under_the_service_loses_and_doubles_nothing(tmp_path: P
     assert outbox_of(st, 0, b"alert", b"alert") == [dumps(a) for a in one.alerts]
     assert outbox_of(st, 0, b"incident", b"incident") == [dumps(u) for u in one.incidents]
     assert st.pending_count(INPUT, GROUP) == 0
+    # the reviewer's recording, read from the new master, replays to the same outbox
+    week = tmp_path / "week.jsonl"
+    assert main(["record", str(week), "--redis", cluster.url_of(new), "--config", str(cfg_file), "--json"]) == 0
+    assert [dumps(a) for a in replay(week, load_config(cfg_file)).alerts] == outbox_of(st, 0, b"alert", b"alert")
     st.close()
