@@ -108,7 +108,17 @@ def recording_lines(hours: Sequence[ClosedHour], trailing: Sequence[EdgeChange],
     """The recording's lines: header, then per hour its edge events and one counts line.
 
     An edge event without a time gets the hour the engine would give it: the one after the
-    last closed hour (hour 0, 1970-01-01, before any)."""
+    last closed hour (hour 0, 1970-01-01, before any).
+
+    >>> def count(node, hour):
+    ...     return {b"type": b"count", b"node": node, b"hour": hour, b"count": b"5"}
+    >>> entries = [(b"1-0", count(b"/", b"2026-11-02T07:00:00Z")),
+    ...            (b"2-0", {b"type": b"edge_add", b"src": b"/", b"dst": b"/news"}),  # no time
+    ...            (b"3-0", count(b"/news", b"2026-11-02T08:00:00Z"))]
+    >>> part = partition_hours(entries, set(), 1 << 20)
+    >>> [(x["type"], x.get("hour") or x.get("ts")) for x in recording_lines(part.hours, [], "UTC")][1:]
+    [('counts', '2026-11-02T07:00:00Z'), ('edge_add', '2026-11-02T08:00:00Z'), ('counts', '2026-11-02T08:00:00Z')]
+    """
     header: dict[str, Any] = {"type": "header", "format": FORMAT, "tz": tz, "hours": len(hours)}
     if hours:
         header["start"] = format_hour(hours[0].hour)
