@@ -204,4 +204,6 @@ def history_table(node: str, rows: Sequence[NodeHour], at: str) -> Table:
 
 
 def console(stderr: bool = False) -> Console:
-    return Console(stderr=stderr, highlight=False, soft_wrap=False, width=140)
+    """The terminal writer. No markup: node ids are user data, and one like ``/q=[/b]`` would
+    otherwise raise a MarkupError (or ``[red]`` restyle the table)."""
+    return Console(stderr=stderr, highlight=False, markup=False, soft_wrap=False, width=140)

@@ -123,3 +123,18 @@ def test_replay_window_shows_and_writes_one_day_and_scores_the_labelled_week(
     assert main(["replay", str(DEMO_RECORDING), "--since", "2026-11-19T00:00:00Z",
                  "--until", "2026-11-18T00:00:00Z"]) == 2
     assert "before --since" in capsys.readouterr().err
+
+
+def test_node_ids_with_brackets_print_as_they_are(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """Node ids are user data: ``[/b]`` or ``[red]`` in one must print literally, not as
+    terminal markup (a closing tag without its opening one used to raise a traceback)."""
+    from .helpers import daily_counts, write_recording
+
+    odd = "/search?q=[/b]"
+    series = {"/": daily_counts(240, 800, 1), odd: daily_counts(240, 120, 2), "/tag/[red]hot": daily_counts(240, 60, 3)}
+    rec = write_recording(tmp_path / "odd.jsonl", series, surge={odd: (200, 6.0)}, edges=[("/", odd)])
+    assert main(["replay", str(rec)]) == 0
+    text = capsys.readouterr().out
+    assert odd in text
+    assert main(["explain", "/tag/[red]hot", "--at", "2026-11-10T15:00:00Z", str(rec)]) == 0
+    assert "/tag/[red]hot" in capsys.readouterr().out
