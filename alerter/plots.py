@@ -30,7 +30,8 @@ def plot_history(node: str, rows: Sequence[NodeHour], at: str, path: str) -> Non
         if r.alert:
             ax.axvline(h, color="tab:red" if r.alert == "surge" else "tab:purple", alpha=0.4, lw=2)
     ax.axvline(float(date2num(parse_hour(at))), color="k", ls=":", lw=1)
-    ax.set_title(f"{node} around {at} (UTC); shaded: expected band; vertical bars: alerts")
+    # a node id is user data: "$" in it must not start matplotlib's math text
+    ax.set_title(f"{node} around {at} (UTC); shaded: expected band; vertical bars: alerts", parse_math=False)
     ax.set_ylabel("visits per hour")
     ax.legend(loc="upper left", fontsize=8)
     ax.xaxis_date()
@@ -70,7 +71,7 @@ def plot_comparison(kept: Sequence[Alert], dropped: Sequence[Alert], added: Sequ
                         markerfacecolor=colour if filled is not False else "none")
     ax.set_yticks([0, 1], ["proposed", "current"])
     ax.set_ylim(-0.7, 1.7)
-    ax.set_title(title + ("; shaded: labelled events" if events else ""), fontsize=10)
+    ax.set_title(title + ("; shaded: labelled events" if events else ""), fontsize=10, parse_math=False)
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
     ax.xaxis_date()
     fig.autofmt_xdate()

@@ -138,3 +138,9 @@ def test_node_ids_with_brackets_print_as_they_are(tmp_path: Path, capsys: pytest
     assert odd in text
     assert main(["explain", "/tag/[red]hot", "--at", "2026-11-10T15:00:00Z", str(rec)]) == 0
     assert "/tag/[red]hot" in capsys.readouterr().out
+    dollar = "/deal$\\frac$5"  # "$...$" would be matplotlib math text, and this one does not parse
+    series = {"/": daily_counts(240, 800, 1), dollar: daily_counts(240, 120, 2)}
+    rec = write_recording(tmp_path / "dollar.jsonl", series, surge={dollar: (200, 6.0)}, edges=[("/", dollar)])
+    png = tmp_path / "dollar.png"
+    assert main(["explain", dollar, "--at", "2026-11-10T15:00:00Z", str(rec), "--plot", str(png)]) == 0
+    assert png.stat().st_size > 10_000
