@@ -20,6 +20,15 @@ def _common(p: argparse.ArgumentParser) -> None:
     p.add_argument("--json", action="store_true", help="print figures as JSON for scripts")
 
 
+def _source(p: argparse.ArgumentParser) -> None:
+    """A recording file, or --live: the input streams in Redis as ``alerter record`` writes them."""
+    p.add_argument("recording", nargs="?", help="recording file (.jsonl or .jsonl.gz); or give --live")
+    p.add_argument("--live", action="store_true",
+                   help="read the input streams in Redis instead of a file (all partitions, from the start)")
+    p.add_argument("--redis", metavar="URL",
+                   help="with --live: Redis URL (default: live.redis_url, else embedded)")
+
+
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="alerter",
@@ -29,7 +38,7 @@ def _parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     p = sub.add_parser("replay", help="run the engine over a recording and list its alerts")
-    p.add_argument("recording", help="recording file (.jsonl or .jsonl.gz)")
+    _source(p)
     p.add_argument("--out", metavar="FILE", help="write alerts as JSON Lines to FILE")
     p.add_argument("--labels", metavar="FILE", help="score the alerts against labelled events")
     p.add_argument("--skip-bad", action="store_true", help="report and skip malformed lines instead of stopping")
@@ -43,7 +52,7 @@ def _parser() -> argparse.ArgumentParser:
     p = sub.add_parser("explain", help="show a node's expected value, band and residuals around an hour")
     p.add_argument("node", help="node id, e.g. /news")
     p.add_argument("--at", required=True, metavar="HOUR", help="UTC hour, e.g. 2026-11-18T15:00:00Z")
-    p.add_argument("recording", help="recording file (.jsonl or .jsonl.gz)")
+    _source(p)
     p.add_argument("--window", type=int, default=12, metavar="H", help="hours either side (default 12)")
     p.add_argument("--plot", metavar="PNG", help="also draw the history to a PNG file")
     p.add_argument("--skip-bad", action="store_true", help="report and skip malformed lines")
@@ -52,7 +61,7 @@ def _parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("graph", help="list a node's neighbourhood with the learned link shares")
     p.add_argument("node", help="node id, e.g. /news")
-    p.add_argument("recording", help="recording file to learn the flows from (.jsonl or .jsonl.gz)")
+    _source(p)
     p.add_argument("--hops", type=int, default=1, metavar="K", help="links away from the node (default 1)")
     p.add_argument("--direction", choices=("up", "down"), default="down",
                    help="up = who sends it visitors, down = where its visitors go (default down)")
@@ -62,7 +71,7 @@ def _parser() -> argparse.ArgumentParser:
     p.set_defaults(func=commands.cmd_graph)
 
     p = sub.add_parser("compare", help="what a proposed config would change: alerts dropped and added, settings")
-    p.add_argument("recording", help="recording file (.jsonl or .jsonl.gz), e.g. last week's")
+    _source(p)
     p.add_argument("--config", required=True, metavar="FILE", help="the proposed YAML config")
     p.add_argument("--base", metavar="FILE", help="the config in use (default: config/default.yaml)")
     p.add_argument("--labels", metavar="FILE", help="labelled events: mark true alerts, score both")
@@ -97,9 +106,21 @@ def _parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _parse(parser: argparse.ArgumentParser, argv: Sequence[str] | None) -> argparse.Namespace:
+    """``parse_args``, except that a RECORDING given after options (``explain NODE --at HOUR
+    FILE``) still lands in ``recording``: argparse fills an optional positional at the first
+    positional it meets, so without this the file would be an unrecognised argument."""
+    args, extra = parser.parse_known_args(argv)
+    if len(extra) == 1 and not extra[0].startswith("-") and getattr(args, "recording", "") is None:
+        args.recording = extra[0]
+    elif extra:
+        parser.error(f"unrecognized arguments: {' '.join(extra)}")
+    return args
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the console script; returns the exit code."""
-    args = _parser().parse_args(argv)
+    args = _parse(_parser(), argv)
     logging.basicConfig(level=logging.DEBUG if args.verbose else logging.WARNING,
                         format=LOG_FORMAT, stream=sys.stderr)
     func: Callable[[argparse.Namespace], int] = args.func

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import tempfile
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import replace
@@ -41,6 +42,29 @@ def progress_bar(label: str, enabled: bool = True) -> Iterator[Callable[[int, in
             bar.update(task, completed=done, total=total)
 
         yield on_hour
+
+
+@contextmanager
+def recording_of(args: argparse.Namespace, config: Config) -> Iterator[Path]:
+    """The recording a command reads: the file given, or with ``--live`` the input streams in
+    Redis written to a temporary file first (see :mod:`alerter.export`)."""
+    if args.live == (args.recording is not None):
+        raise AlerterError("give either a RECORDING file or --live (the input streams in Redis), "
+                           f"{'not both' if args.live else 'one of them'}")
+    if not args.live:
+        yield Path(args.recording)
+        return
+    from .export import export_streams
+    from .store import connect
+
+    with tempfile.TemporaryDirectory(prefix="alerter-live-") as folder:
+        path = Path(folder) / "live.jsonl"
+        store = connect(config.live, args.redis)
+        try:
+            export_streams(store, config.live, path, config.clock.timezone)
+        finally:
+            store.close()
+        yield path
 
 
 def _report_bad(result: ReplayResult) -> None:
@@ -108,17 +132,17 @@ def windowed(result: ReplayResult, since: datetime | None, until: datetime | Non
 
 def cmd_replay(args: argparse.Namespace) -> int:
     config = load_config(args.config)
-    recording = Path(args.recording)
     since, until = _hour_option(args.since, "--since"), _hour_option(args.until, "--until")
     if since is not None and until is not None and until < since:
         raise HourRangeError(f"--until {args.until} is before --since {args.since}")
-    with progress_bar("replaying hours", not args.json) as on_hour:
+    with recording_of(args, config) as recording, progress_bar("replaying hours", not args.json) as on_hour:
         result = replay(recording, config, skip_bad=args.skip_bad, on_hour=on_hour)
     _report_bad(result)
     labels = Path(args.labels) if args.labels else None
+    shown = Path("live") if args.live else recording
     if since is None and until is None:
-        return present(result, recording, args, config, labels)
-    return present(windowed(result, since, until), recording, args, config, labels, score_from=result)
+        return present(result, shown, args, config, labels)
+    return present(windowed(result, since, until), shown, args, config, labels, score_from=result)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -154,9 +178,8 @@ def cmd_explain(args: argparse.Namespace) -> int:
         at = parse_hour(args.at)
     except ValueError as exc:
         raise HourRangeError(f"--at: {exc}") from None
-    with progress_bar("replaying hours", not args.json) as on_hour:
-        result = replay(Path(args.recording), config, skip_bad=args.skip_bad,
-                        watch=(args.node,), on_hour=on_hour)
+    with recording_of(args, config) as recording, progress_bar("replaying hours", not args.json) as on_hour:
+        result = replay(recording, config, skip_bad=args.skip_bad, watch=(args.node,), on_hour=on_hour)
     _report_bad(result)
     assert result.engine is not None
     result.engine.nodes.get(args.node)  # raises UnknownNodeError with suggestions
@@ -200,11 +223,12 @@ def _hour_option(text: str | None, what: str) -> datetime | None:
 def cmd_compare(args: argparse.Namespace) -> int:
     """Replay one recording under the current and the proposed config; what would change."""
     current, proposed = load_config(args.base), load_config(args.config)
-    recording = Path(args.recording)
     runs = []
-    for name, cfg in (("current", current), ("proposed", proposed)):
-        with progress_bar(f"replaying with the {name} config", not args.json) as on_hour:
-            runs.append(replay(recording, cfg, skip_bad=args.skip_bad, on_hour=on_hour))
+    with recording_of(args, current) as recording:
+        for name, cfg in (("current", current), ("proposed", proposed)):
+            with progress_bar(f"replaying with the {name} config", not args.json) as on_hour:
+                runs.append(replay(recording, cfg, skip_bad=args.skip_bad, on_hour=on_hour))
+    recording = Path("live") if args.live else recording
     _report_bad(runs[0])
     labels = load_labels(args.labels) if args.labels else None
     since = _hour_option(args.since, "--since") or (labels.labelled_from if labels else None)
@@ -262,8 +286,8 @@ def cmd_graph(args: argparse.Namespace) -> int:
     if args.hops < 1:
         raise AlerterError(f"--hops {args.hops}: must be 1 or more")
     config = load_config(args.config)
-    with progress_bar("replaying hours", not args.json) as on_hour:
-        result = replay(Path(args.recording), config, skip_bad=args.skip_bad, on_hour=on_hour)
+    with recording_of(args, config) as recording, progress_bar("replaying hours", not args.json) as on_hour:
+        result = replay(recording, config, skip_bad=args.skip_bad, on_hour=on_hour)
     _report_bad(result)
     engine = result.engine
     assert engine is not None and engine.last_hour is not None

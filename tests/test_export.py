@@ -83,3 +83,29 @@ def test_record_says_what_is_wrong(tmp_path: Path, redis_url: str,  # noqa: F811
                                    capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["record", str(tmp_path / "no" / "such" / "w.jsonl"), "--redis", redis_url]) == 2
     assert "does not exist" in capsys.readouterr().err
+
+
+def test_live_reads_the_streams_like_the_file_it_came_from(tmp_path: Path, store: Store,  # noqa: F811
+                                                           redis_url: str,  # noqa: F811
+                                                           capsys: pytest.CaptureFixture[str]) -> None:
+    """``--live`` on replay, explain, graph and compare: the input streams in Redis, read as
+    ``alerter record`` reads them, give what the pushed file gives."""
+    rec = small_recording(tmp_path)
+    push_recording(rec, store, Config().live)
+    capsys.readouterr()
+    hour = "2026-11-10T15:00:00Z"
+    for args in (["replay"], ["explain", "/hot", "--at", hour], ["graph", "/"]):
+        assert main([*args, str(rec), "--json"]) == 0
+        from_file = json.loads(capsys.readouterr().out)
+        assert main([*args, "--live", "--redis", redis_url, "--json"]) == 0
+        from_redis = json.loads(capsys.readouterr().out)
+        from_file.pop("recording", None), from_redis.pop("recording", None)
+        assert from_redis == from_file and from_file
+    strict = tmp_path / "strict.yaml"
+    strict.write_text("rules:\n  surge:\n    z: 50.0\n")
+    assert main(["compare", "--live", "--redis", redis_url, "--config", str(strict), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["dropped"]
+    assert main(["replay", "--json"]) == 2
+    assert "RECORDING file or --live" in capsys.readouterr().err
+    assert main(["replay", str(rec), "--live"]) == 2
+    assert "not both" in capsys.readouterr().err
