@@ -175,16 +175,28 @@ def _open_out(path: Path) -> TextIO:
     return path.open("w", encoding="utf-8")
 
 
+def _counted(entries: Iterable[Entry], tick: Callable[[int], None] | None) -> Iterator[Entry]:
+    """``entries`` as they are, calling ``tick(read so far)`` every 1,000 and at the end."""
+    k = 0
+    for k, entry in enumerate(entries, 1):
+        if tick is not None and k % 1000 == 0:
+            tick(k)
+        yield entry
+    if tick is not None:
+        tick(k)
+
+
 def export_streams(store: Store, live: LiveSettings, path: str | Path, tz: str, *,
-                   on_partition: Callable[[int, int], None] | None = None) -> ExportSummary:
-    """Read every partition's input stream (and its late stream) and write one recording."""
-    parts = []
-    for p in range(live.partitions):
+                   on_entry: Callable[[int, int | None], None] | None = None) -> ExportSummary:
+    """Read every partition's input stream (and its late stream) and write one recording;
+    ``on_entry(read, total)`` now and then, over all partitions' entries (for a progress bar)."""
+    streams = [partition_name(live.names.input, p) for p in range(live.partitions)]
+    total, done, parts = sum(store.length(s) for s in streams), 0, []
+    for p, stream in enumerate(streams):
         late = _late_ids(store, partition_name(live.names.late, p))
-        parts.append(partition_hours(_entries(store, partition_name(live.names.input, p)), late,
-                                     live.max_entry_bytes))
-        if on_partition is not None:
-            on_partition(p + 1, live.partitions)
+        tick = None if on_entry is None else (lambda k, base=done: on_entry(base + k, total))
+        parts.append(partition_hours(_counted(_entries(store, stream), tick), late, live.max_entry_bytes))
+        done += parts[-1].entries
     hours = merge_hours(parts)
     trailing = [e for part in parts for e in part.trailing]
     summary = ExportSummary(hours=len(hours), partitions=live.partitions,

@@ -92,7 +92,8 @@ def cmd_record(args: argparse.Namespace) -> int:
         raise AlerterError(f"{out}: folder {out.parent} does not exist")
     store = connect(config.live, args.redis)
     try:
-        summary = export_streams(store, config.live, out, config.clock.timezone)
+        with progress_bar("reading the input streams", not args.json) as on_entry:
+            summary = export_streams(store, config.live, out, config.clock.timezone, on_entry=on_entry)
     finally:
         store.close()
     if args.json:

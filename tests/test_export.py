@@ -15,6 +15,7 @@ import pytest
 from alerter.cli import main
 from alerter.commands import DEMO_RECORDING
 from alerter.config import Config, load_config
+from alerter.export import export_streams
 from alerter.producer import push_recording
 from alerter.recording import EdgeEvent, read_recording
 from alerter.records import dumps
@@ -77,6 +78,10 @@ def test_two_partitions_and_a_link_event_without_a_time(tmp_path: Path, store: S
     assert [e.ts for e in added] == [START + timedelta(hours=150)]
     live = sorted(outbox_of(store, 0, b"alert", b"alert") + outbox_of(store, 1, b"alert", b"alert"))
     assert sorted(dumps(a) for a in replay(out, config).alerts) == live != []
+    seen: list[tuple[int, int | None]] = []  # the progress callback: rising, and ends at all entries
+    again = export_streams(store, config.live, tmp_path / "again.jsonl", "UTC", on_entry=lambda k, n: seen.append((k, n)))
+    assert seen[-1] == (summary["entries"], summary["entries"]) == (again.entries, again.entries)
+    assert [k for k, _ in seen] == sorted(k for k, _ in seen)
 
 
 def test_record_says_what_is_wrong(tmp_path: Path, redis_url: str,  # noqa: F811
