@@ -21,7 +21,7 @@ from .errors import AlerterError, HourRangeError, RecordingError
 from .records import write_jsonl
 from .replay import ReplayResult, replay
 from .scoring import load_labels, score_alerts
-from .timeaxis import format_hour, hour_index, parse_hour
+from .timeaxis import format_hour, hour_index, parse_hour, within
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_RECORDING = ROOT / "replay_data" / "demo_week.jsonl.gz"
@@ -122,12 +122,9 @@ def present(result: ReplayResult, recording: Path, args: argparse.Namespace, con
 def windowed(result: ReplayResult, since: datetime | None, until: datetime | None) -> ReplayResult:
     """The result with only the alerts, incident updates and spill-over warnings of the hours
     ``since <= hour <= until`` (either end open when None); the engine ran over everything."""
-    def inside(hour: str) -> bool:
-        h = parse_hour(hour)
-        return (since is None or h >= since) and (until is None or h <= until)
-    return replace(result, alerts=[a for a in result.alerts if inside(a.hour)],
-                   incidents=[u for u in result.incidents if inside(u.hour)],
-                   spills=[w for w in result.spills if inside(w.hour)])
+    return replace(result, alerts=[a for a in result.alerts if within(a.hour, since, until)],
+                   incidents=[u for u in result.incidents if within(u.hour, since, until)],
+                   spills=[w for w in result.spills if within(w.hour, since, until)])
 
 
 def cmd_replay(args: argparse.Namespace) -> int:

@@ -20,7 +20,7 @@ from .config import Config
 from .incidents import IncidentUpdate
 from .records import Alert
 from .scoring import Labels, Score, matches_event, score_alerts
-from .timeaxis import format_hour, parse_hour
+from .timeaxis import format_hour, within
 
 __all__ = ["AlertDiff", "Comparison", "compare_runs", "diff_alerts", "labelled", "setting_changes", "side_counts"]
 
@@ -41,7 +41,7 @@ class AlertDiff:
 
 
 def _window(alerts: Sequence[Alert], since: datetime | None) -> list[Alert]:
-    return [a for a in alerts if since is None or parse_hour(a.hour) >= since]
+    return [a for a in alerts if within(a.hour, since)]
 
 
 def diff_alerts(current: Sequence[Alert], proposed: Sequence[Alert], since: datetime | None = None) -> AlertDiff:
@@ -68,7 +68,7 @@ def side_counts(alerts: Sequence[Alert], incidents: Sequence[IncidentUpdate],
                 since: datetime | None = None) -> dict[str, int]:
     """Alerts by kind and incidents opened (what reaches chat: one message each, then updates)."""
     mine = _window(alerts, since)
-    opened = {u.incident for u in incidents if since is None or parse_hour(u.start) >= since}
+    opened = {u.incident for u in incidents if within(u.start, since)}
     return {"alerts": len(mine), "surge": sum(a.kind == "surge" for a in mine),
             "drop": sum(a.kind == "drop" for a in mine), "incidents": len(opened)}
 
@@ -80,7 +80,7 @@ def labelled(alerts: Sequence[Alert], labels: Labels | None, slack_hours: int) -
         return [None] * len(alerts)
     slack = timedelta(hours=slack_hours)
     wanted = [e for e in labels.events if e.alert_expected]
-    return [None if parse_hour(a.hour) < labels.labelled_from else any(matches_event(a, e, slack) for e in wanted)
+    return [any(matches_event(a, e, slack) for e in wanted) if within(a.hour, labels.labelled_from) else None
             for a in alerts]
 
 

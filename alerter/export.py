@@ -19,14 +19,14 @@ first entries (within the close grace).
 
 from __future__ import annotations
 
-import gzip
 import json
 import math
+import os
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, field, replace
-from datetime import datetime, timedelta
+from datetime import datetime
 from pathlib import Path
-from typing import Any, TextIO
+from typing import Any
 
 import numpy as np
 
@@ -34,15 +34,14 @@ from .buckets import ClosedHour, HourBuckets
 from .config import LiveSettings
 from .constants import partition_name
 from .errors import BadEntryError
-from .recording import FORMAT
+from .recording import FORMAT, open_text
 from .store import Entry, Store
-from .timeaxis import format_hour
+from .timeaxis import HOUR, format_hour
 from .wire import EdgeChange, decode_entry
 
 __all__ = ["ExportSummary", "PartitionHours", "export_streams", "merge_hours", "partition_hours",
            "recording_lines"]
 
-HOUR = timedelta(hours=1)
 EPOCH = datetime.fromisoformat("1970-01-01T00:00:00+00:00")
 
 
@@ -103,8 +102,8 @@ def _edge_line(edge: EdgeChange, default_ts: datetime) -> dict[str, Any]:
     return {"type": f"edge_{edge.op}", "ts": format_hour(edge.ts or default_ts), "src": edge.src, "dst": edge.dst}
 
 
-def recording_lines(hours: Sequence[ClosedHour], trailing: Sequence[EdgeChange], tz: str,
-                    site: str | None = None) -> Iterator[dict[str, Any]]:
+def recording_lines(hours: Sequence[ClosedHour], trailing: Sequence[EdgeChange],
+                    tz: str) -> Iterator[dict[str, Any]]:
     """The recording's lines: header, then per hour its edge events and one counts line.
 
     An edge event without a time gets the hour the engine would give it: the one after the
@@ -122,8 +121,6 @@ def recording_lines(hours: Sequence[ClosedHour], trailing: Sequence[EdgeChange],
     header: dict[str, Any] = {"type": "header", "format": FORMAT, "tz": tz, "hours": len(hours)}
     if hours:
         header["start"] = format_hour(hours[0].hour)
-    if site:
-        header["site"] = site
     yield header
     last: datetime | None = None
     for h in hours:
@@ -169,12 +166,6 @@ def _late_ids(store: Store, stream: str) -> set[bytes]:
     return {f[b"entry_id"] for _, f in _entries(store, stream) if b"entry_id" in f}
 
 
-def _open_out(path: Path) -> TextIO:
-    if path.suffix == ".gz":
-        return gzip.open(path, "wt", encoding="utf-8")  # type: ignore[return-value]
-    return path.open("w", encoding="utf-8")
-
-
 def _counted(entries: Iterable[Entry], tick: Callable[[int], None] | None) -> Iterator[Entry]:
     """``entries`` as they are, calling ``tick(read so far)`` every 1,000 and at the end."""
     k = 0
@@ -203,11 +194,13 @@ def export_streams(store: Store, live: LiveSettings, path: str | Path, tz: str, 
                             entries=sum(p.entries for p in parts), dead=sum(p.dead for p in parts),
                             late=sum(p.late for p in parts))
     target = Path(path)
-    with _open_out(target) as out:
+    tmp = target.with_name(target.name + ".tmp" + target.suffix)  # a crash leaves no half recording
+    with open_text(tmp, "w") as out:
         for line in recording_lines(hours, trailing, tz):
             if line["type"] == "counts":
                 summary.counts += len(line["counts"])
             elif line["type"] != "header":
                 summary.edges += 1
             out.write(json.dumps(line, separators=(",", ":")) + "\n")
+    os.replace(tmp, target)
     return summary

@@ -60,11 +60,11 @@ class EdgeEvent:
 Event = Header | CountsEvent | EdgeEvent
 
 
-def open_text(path: Path) -> Any:
-    """Open a text file, transparently gunzipping ``.gz``."""
+def open_text(path: Path, mode: str = "r") -> Any:
+    """Open a text file to read (``mode="r"``) or write (``"w"``), gzipping ``.gz`` either way."""
     if path.suffix == ".gz":
-        return gzip.open(path, "rt", encoding="utf-8")
-    return path.open("r", encoding="utf-8")
+        return gzip.open(path, mode + "t", encoding="utf-8")
+    return path.open(mode, encoding="utf-8")
 
 
 def _node_id(value: Any, key: str) -> str:

@@ -10,7 +10,7 @@ from __future__ import annotations
 from datetime import UTC, datetime, timedelta
 from zoneinfo import ZoneInfo
 
-__all__ = ["parse_hour", "format_hour", "local_slots", "hour_index", "HOUR"]
+__all__ = ["parse_hour", "format_hour", "local_slots", "hour_index", "within", "HOUR"]
 
 HOUR = timedelta(hours=1)
 
@@ -63,6 +63,20 @@ def local_slots(hour: datetime, tz: ZoneInfo) -> tuple[int, int]:
     """
     local = hour.astimezone(tz)
     return local.hour, local.weekday()
+
+
+def within(hour: str, since: datetime | None, until: datetime | None = None) -> bool:
+    """Whether the hour ``hour`` (as written in records) lies in ``since <= hour <= until``; an
+    end given as None is open.
+
+    >>> h = parse_hour("2026-11-18T00:00:00Z")
+    >>> within("2026-11-18T05:00:00Z", h), within("2026-11-17T23:00:00Z", h)
+    (True, False)
+    >>> within("2026-11-18T05:00:00Z", None, until=h)
+    False
+    """
+    moment = parse_hour(hour)
+    return (since is None or moment >= since) and (until is None or moment <= until)
 
 
 def hour_index(hour: datetime) -> int:
