@@ -49,8 +49,8 @@ def recording_of(args: argparse.Namespace, config: Config) -> Iterator[Path]:
     """The recording a command reads: the file given, or with ``--live`` the input streams in
     Redis written to a temporary file first (see :mod:`alerter.export`)."""
     if args.live == (args.recording is not None):
-        raise AlerterError("give either a RECORDING file or --live (the input streams in Redis), "
-                           f"{'not both' if args.live else 'one of them'}")
+        raise AlerterError("give a RECORDING file or --live (the input streams in Redis)"
+                           + (", not both" if args.live else ""))
     if not args.live:
         yield Path(args.recording)
         return
@@ -61,9 +61,13 @@ def recording_of(args: argparse.Namespace, config: Config) -> Iterator[Path]:
         path = Path(folder) / "live.jsonl"
         store = connect(config.live, args.redis)
         try:
-            export_streams(store, config.live, path, config.clock.timezone)
+            summary = export_streams(store, config.live, path, config.clock.timezone)
         finally:
             store.close()
+        if summary.hours == 0:
+            raise AlerterError(f"--live: the input streams at {store.where} ({config.live.names.input}, "
+                               f"{config.live.partitions} partition(s)) hold no counts; push some first, or check "
+                               "--redis, live.redis_url and live.names")
         yield path
 
 

@@ -96,6 +96,8 @@ def test_live_reads_the_streams_like_the_file_it_came_from(tmp_path: Path, store
     """``--live`` on replay, explain, graph and compare: the input streams in Redis, read as
     ``alerter record`` reads them, give what the pushed file gives."""
     rec = small_recording(tmp_path)
+    assert main(["replay", "--live", "--redis", redis_url]) == 2  # nothing pushed yet
+    assert "hold no counts" in capsys.readouterr().err
     push_recording(rec, store, Config().live)
     capsys.readouterr()
     hour = "2026-11-10T15:00:00Z"
