@@ -241,27 +241,34 @@ class Engine:
 
     def explain_upstream(self, r: StepResult, i: int) -> tuple[tuple[Upstream, ...], float | None, str | None]:
         """Top upstream neighbours, unexplained part and origin of node ``i`` in hour ``r``."""
-        if r.attribution is None or np.isnan(r.observed[i]):
+        return self._explain(r, i, float(r.observed[i]), hour_index(r.hour))
+
+    def _explain(self, r: StepResult, i: int, observed: float,
+                 tick: int) -> tuple[tuple[Upstream, ...], float | None, str | None]:
+        if r.attribution is None or observed != observed:  # no flows, or a missing count (NaN)
             return (), None, None
-        own_excess = float(r.observed[i] - r.own_expected[i])
-        upstream, unexplained = self.joint.upstream(i, r.attribution, r.own_expected, own_excess,
-                                                    hour_index(r.hour))
+        own_excess = observed - float(r.own_expected[i])
+        upstream, unexplained = self.joint.upstream(i, r.attribution, r.own_expected, own_excess, tick)
         return upstream, unexplained, self.joint.origin(unexplained, own_excess)
 
     def _alerts(self, r: StepResult, up: np.ndarray, down: np.ndarray,
                 expected: tuple[np.ndarray, np.ndarray], scores: tuple[np.ndarray, np.ndarray]) -> list[Alert]:
-        hour = format_hour(r.hour)
+        """One record per firing node; the per-node figures are read as lists once per hour
+        (a storm hour can hold thousands of alerts)."""
+        hour, tick = format_hour(r.hour), hour_index(r.hour)
         out = []
         for kind, mask, exp, score in (("surge", up, expected[0], scores[0]),
                                        ("drop", down, expected[1], scores[1])):
-            for i in np.flatnonzero(mask).tolist():
-                upstream, unexplained, origin = self.explain_upstream(r, i)
+            idx = np.flatnonzero(mask)
+            rows = zip(idx.tolist(), r.observed[idx].tolist(), exp[idx].tolist(), r.band_low[idx].tolist(),
+                       r.band_high[idx].tolist(), score[idx].tolist(), self.rules.rule_names_of(kind, idx),
+                       self.rules.streaks_of(kind, idx), strict=True)
+            for i, observed, expect, low, high, sc, rule, streak in rows:
+                upstream, unexplained, origin = self._explain(r, i, observed, tick)
                 out.append(Alert.build(
-                    node=self.nodes.ids[i], hour=hour, kind=kind, observed=r.observed[i],
-                    expected=exp[i], band_low=r.band_low[i], band_high=r.band_high[i],
-                    score=score[i], rule=self.rules.rule_name(kind, i),
-                    streak=self.rules.streak(kind, i), upstream=upstream, unexplained=unexplained,
-                    origin=origin,
+                    node=self.nodes.ids[i], hour=hour, kind=kind, observed=observed, expected=expect,
+                    band_low=low, band_high=high, score=sc, rule=rule, streak=streak, upstream=upstream,
+                    unexplained=unexplained, origin=origin,
                 ))
         out.sort(key=lambda a: (a.kind, a.node))
         return out

@@ -17,7 +17,7 @@ __all__ = ["Alert", "NodeHour", "SpillWarning", "Upstream", "alert_from_dict", "
 
 
 def _r(value: float, digits: int = 3) -> float:
-    return float(round(float(value), digits))
+    return round(float(value), digits)
 
 
 @dataclass(frozen=True)

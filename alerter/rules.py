@@ -105,6 +105,15 @@ class RuleBook:
     def streak(self, direction: str, node: int) -> int:
         return int(self.by_direction[direction].streak[node])
 
+    def rule_names_of(self, direction: str, nodes: np.ndarray) -> list[str]:
+        """:meth:`rule_name` of each of ``nodes`` (indices)."""
+        names = [f"{direction}:{name}" for name in self.rule_names]
+        return [names[k] for k in self.by_direction[direction].rule[nodes].tolist()]
+
+    def streaks_of(self, direction: str, nodes: np.ndarray) -> list[int]:
+        """:meth:`streak` of each of ``nodes`` (indices)."""
+        return self.by_direction[direction].streak[nodes].tolist()
+
     def evaluate(self, observed: np.ndarray, expected: np.ndarray, score: np.ndarray,
                  eligible: np.ndarray, tick: int, expected_drop: np.ndarray | None = None,
                  score_drop: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
