@@ -54,3 +54,27 @@ def test_ineligible_nodes_never_fire() -> None:
     up, down = book.evaluate(np.array([500.0, np.nan]), np.array([100.0, 100.0]), np.array([9.0, np.nan]),
                              np.array([False, False]), 0)
     assert not up.any() and not down.any()
+
+
+def test_names_and_streaks_of_many_nodes_match_one_at_a_time() -> None:
+    """The alert builder reads rule names and streaks for all firing nodes at once; they must
+    be what the one-node reads give, override names and per-node streaks included."""
+    from alerter.config import PartialDirectionRule, RuleOverride
+
+    settings = RuleSettings(overrides=[
+        RuleOverride(name="shop", match=["/shop/*"], surge=PartialDirectionRule(persistence=2)),
+        RuleOverride(name="news", match=["/news/*"]),
+    ])
+    book = RuleBook(settings)
+    ids = ["/a", "/shop/x", "/news/y", "/shop/z", "/b"]
+    book.add_nodes(ids)
+    hot = np.full(len(ids), 500.0)
+    for tick in range(3):  # three hot hours: streaks grow, /shop/* fires from its second hour
+        up, _ = book.evaluate(hot, np.full(len(ids), 100.0), np.full(len(ids), 9.0), np.ones(len(ids), bool), tick)
+    nodes = np.array([4, 1, 2, 0, 3])
+    names = book.rule_names_of("surge", nodes)
+    assert names == [book.rule_name("surge", int(i)) for i in nodes]
+    assert names == ["surge:default", "surge:shop", "surge:news", "surge:default", "surge:shop"]
+    assert book.streaks_of("surge", nodes) == [book.streak("surge", int(i)) for i in nodes]
+    assert set(book.streaks_of("surge", nodes)) == {3}
+    assert book.rule_names_of("drop", nodes[:0]) == [] and book.streaks_of("drop", nodes[:0]) == []
