@@ -321,12 +321,24 @@ class LocalCluster:
                         return self.ports.index(master_port)
         raise ServerSetupError(f"no live cluster node serves slot {slot}")
 
-    def kill_master(self, slot: int, timeout: float = 30.0) -> tuple[int, int]:
+    def kill_master(self, slot: int, timeout: float = 30.0, hold_seconds: float = 0.0) -> tuple[int, int]:
         """SIGKILL the master serving ``slot`` and wait until a replica serves it and every
-        live node reports ``cluster_state:ok``; returns (old, new) node indexes."""
+        live node reports ``cluster_state:ok``; returns (old, new) node indexes.
+
+        ``hold_seconds`` keeps the slot without any server for that long: the master's
+        replicas are told not to take over (``cluster-replica-no-failover``) until then, so a
+        client's own retries cannot ride the gap out by luck (a failover alone takes about
+        the node timeout, which a client's retries may or may not outlast)."""
         old = self.master_of(slot)
+        held = self._replicas_of(old) if hold_seconds > 0 else []
+        for k in held:
+            _command(self.ports[k], "CONFIG", "SET", "cluster-replica-no-failover", "yes")
         self.processes[old].kill()
         self.processes[old].wait(timeout=10)
+        if held:
+            time.sleep(hold_seconds)
+            for k in held:
+                _command(self.ports[k], "CONFIG", "SET", "cluster-replica-no-failover", "no")
         live = [p for k, p in enumerate(self.ports) if self.processes[k].poll() is None]
 
         def moved() -> bool:
@@ -337,8 +349,22 @@ class LocalCluster:
                 return False
         _wait(moved, f"failover of slot {slot} from 127.0.0.1:{self.ports[old]}", self._log(old), timeout)
         new = self.master_of(slot)
-        log.info("redis cluster failover slot=%d from=%d to=%d", slot, self.ports[old], self.ports[new])
+        log.info("redis cluster failover slot=%d from=%d to=%d held_s=%.1f", slot, self.ports[old],
+                 self.ports[new], hold_seconds)
         return old, new
+
+    def _replicas_of(self, k: int) -> list[int]:
+        """Indexes of the live nodes that replicate node ``k`` (from its CLUSTER NODES reply:
+        the fourth field of a replica's line is its master's id)."""
+        master = self._node_id(self.ports[k])
+        out = []
+        for line in _command(self.ports[k], "CLUSTER", "NODES").decode(errors="replace").splitlines()[1:]:
+            fields = line.split()
+            if len(fields) >= 4 and fields[3] == master:
+                port = int(fields[1].split("@")[0].rsplit(":", 1)[1])
+                if port in self.ports and self.processes[self.ports.index(port)].poll() is None:
+                    out.append(self.ports.index(port))
+        return out
 
     def stop(self) -> None:
         for proc in self.processes:

@@ -45,6 +45,12 @@ live:
     max_seconds: 1.0
 """
 INPUT, GROUP = "alerter:{p0}:in", "alerter-service"
+HOLD_SECONDS = 8.0
+"""How long the killed master's slots stay without a server before its replica may take over.
+redis-py's cluster client retries a failed command itself: 10 times with jittered waits capped
+at 1 s in redis-py 8 (at most about 5.3 s in all), 3 times in 6.x. A plain failover takes about
+the node timeout (3 s here) and was sometimes ridden out by those retries alone, so the
+service's own backoff went unused and the test failed at random (seen once in CI)."""
 
 
 @pytest.fixture
@@ -94,7 +100,7 @@ def test_a_master_killed_under_the_service_loses_and_doubles_nothing(tmp_path: P
                                 stdout=subprocess.DEVNULL, stderr=err, env=env)
     try:
         _caught_up(url, proc, log)
-        old, new = cluster.kill_master(key_slot(INPUT.encode()))
+        old, new = cluster.kill_master(key_slot(INPUT.encode()), hold_seconds=HOLD_SECONDS)
         assert old != new and new >= cluster.masters  # a replica took the partition's slots
         assert main(["push", str(second), "--redis", cluster.url_of(new), "--config", str(cfg_file),
                      "--json"]) == 0
@@ -105,8 +111,8 @@ def test_a_master_killed_under_the_service_loses_and_doubles_nothing(tmp_path: P
     text = log.read_text()
     assert rc == 0, text[-2000:]
     waits = [line for line in text.splitlines() if "redis unavailable" in line]
-    # with a 3 s node timeout the gap outlasts redis-py's own cluster retries (with 1 s it often
-    # does not): the service's backoff carried it, in the same process throughout
+    # the slot had no server for HOLD_SECONDS, longer than redis-py's own cluster retries wait:
+    # the service's backoff carried the gap, in the same process throughout
     assert waits, "the service never waited for the cluster: the kill missed the run"
     print(f"failover: node {old} -> {new}; the service waited {len(waits)} times, first: {waits[0][-160:]}")
 
