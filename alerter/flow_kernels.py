@@ -200,7 +200,7 @@ def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, 
         for i in range(blocks[k], blocks[k + 1]):
             first, stop = indptr[i], indptr[i + 1]
             m = stop - first
-            _gather_inputs(first, m, src, eb, ages, a0, a1, inv_tau, age_table, z_run, v_run, w_run)
+            _gather_inputs(first, m, src, eb, ages, a0, a1, inv_tau, age_table, z_run, w_run)
             bt, hr = beta[first:stop], hours[first:stop]
             pred, part = _contributions(bt, z_run, np.float64(sign[i]), raw[first:stop])
             inflow[i] = pred
@@ -233,12 +233,14 @@ def observe_runs(blocks, indptr, src, eb, ok, sign, beta, cov, hours, ages, a0, 
 
 
 @_jit_vec
-def _gather_inputs(first, m, src, eb, ages, a0, a1, inv_tau, table, z, v, w):  # noqa: ANN001, ANN202
+def _gather_inputs(first, m, src, eb, ages, a0, a1, inv_tau, table, z, w):  # noqa: ANN001, ANN202
     """``z[q] = u`` of the ``m`` edges from ``first``: the source's excess plus, when ``inv_tau``
-    is not 0, the novelty weight times its baseline. A weight from ``table`` is looked up in
-    the gather loop itself (the loop is scalar anyway, the table small; separate passes cost
-    about 11 ms at 22 million links); a computed weight has loops of its own (``v``, ``w``:
-    scratch rows)."""
+    is not 0, the novelty weight ``exp(-max(age, 0) / tau)`` times its baseline (``age = a0 +
+    a1 * ages[e]``). A non-empty ``table`` holds the weight per whole hour of age (its last
+    entry serves all older ages) and is looked up in the gather loop itself: the loop is
+    scalar anyway and the table small (separate passes cost about 11 ms at 22 million
+    links). A computed weight (explicit ages) takes a loop of its own over the baselines
+    gathered into ``w`` (a scratch row)."""
     n_edges = src.shape[0]
     if inv_tau != 0.0 and table.shape[0] > 0:
         last = np.float64(table.shape[0] - 1)
@@ -258,22 +260,8 @@ def _gather_inputs(first, m, src, eb, ages, a0, a1, inv_tau, table, z, v, w):  #
         z[q] = eb[j, 0]
         w[q] = eb[j, 1]
     if inv_tau != 0.0:
-        _novelty_rows(ages[first:first + m], a0, a1, inv_tau, table, 0, v)
         for q in range(m):
-            z[q] += v[q] * w[q]
-
-
-@_jit_vec
-def _novelty_rows(ages, a0, a1, inv_tau, table, n_table, out):  # noqa: ANN001, ANN202
-    """``out[q] = exp(-max(age, 0) / tau)`` of each edge of a run: from ``table`` by whole
-    hours of age when it is non-empty (its last entry serves all older ages), else computed."""
-    if n_table > 0:  # clamped as a float, then truncated: a loop of SIMD conversions and gathers
-        last = np.float64(n_table - 1)
-        for q in range(ages.shape[0]):
-            out[q] = table[np.int64(min(max(a0 + a1 * np.float64(ages[q]), 0.0), last))]
-    else:
-        for q in range(ages.shape[0]):
-            out[q] = np.exp(-max(a0 + a1 * np.float64(ages[q]), 0.0) * inv_tau)
+            z[q] += np.exp(-max(a0 + a1 * np.float64(ages[first + q]), 0.0) * inv_tau) * w[q]
 
 
 @_jit_vec

@@ -206,8 +206,8 @@ class JointModel:
         Shares are of the excess over the node's own seasonal baseline; they sum to <= 1.
         """
         lo, hi = (int(self.indptr[i]), int(self.indptr[i + 1])) if i + 1 < len(self.indptr) else (0, 0)
-        if lo == hi and (own_excess >= 0 or not any(r.dst == i for r in self.removed)):
-            return (), abs(own_excess) * (1.0 if own_excess >= 0 else -1.0)  # no link to explain any of it
+        if lo == hi and own_excess >= 0:  # no in-link: none of it is explained (drops may have removed links)
+            return (), own_excess
         src = self.learner.state.src[lo:hi]
         visits = attribution.capped_run(i, lo, hi).astype(float)
         if own_excess < 0:

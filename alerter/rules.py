@@ -100,7 +100,7 @@ class RuleBook:
         return self.by_direction[direction].z
 
     def rule_name(self, direction: str, node: int) -> str:
-        return f"{direction}:{self.rule_names[int(self.by_direction[direction].rule[node])]}"
+        return self.rule_names_of(direction, np.array([node]))[0]
 
     def streak(self, direction: str, node: int) -> int:
         return int(self.by_direction[direction].streak[node])

@@ -12,10 +12,11 @@ flow step moves, a measured memory bandwidth (``np.copyto`` of a 1 GiB float32 a
 the ratio of the measured flow time to that bandwidth bound. Targets (PASS/MISS): full
 tick < 250 ms, peak memory < 2 GiB. The tick is judged twice: whole, and without the
 incident grouping (``Engine.track``), since the issue's tick lists baseline, flows, rules
-and attribution; the grouping's own time is printed beside it. As the 250 ms was set on another machine, a plain
-numpy edge step over the same links is timed too and the target scaled by its ratio to the
-issue's 115 ms for that step (both verdicts are printed). A few extra ticks whose hours also add and remove links
-(``--changes``) show what the learner's re-sync with the graph adds to such an hour.
+and attribution; the grouping's own time is printed beside it. As the 250 ms was set on
+another machine, a plain numpy edge step over the same links is timed too and the target
+scaled by its ratio to the issue's 115 ms for that step (both verdicts are printed). A few
+extra ticks whose hours also add and remove links (``--changes``) show what the learner's
+re-sync with the graph adds to such an hour.
 
 Run: ``.venv/bin/python benchmarks/bench_tick.py [--quick] [--ticks N] [--warm N] [--no-settle]``.
 """
@@ -350,6 +351,11 @@ def plain_numpy_step_ms(eng: Engine, repeat: int = 7) -> tuple[float, float]:
     return statistics.median(times), min(times)
 
 
+def _rest(tick: dict[str, float]) -> float:
+    """What a tick spent outside its timed parts (scores, rules, imputation)."""
+    return tick["tick"] - sum(tick.get(part, 0.0) for part in PARTS)
+
+
 def verdict(ok: bool) -> str:
     return "PASS" if ok else "MISS"
 
@@ -383,7 +389,7 @@ def main() -> None:
     print(f"full tick (Engine.step_array): median {tick:8.1f} ms over {args.ticks} ticks "
           f"(min {min(t['tick'] for t in timer.ticks):.1f}, max {max(t['tick'] for t in timer.ticks):.1f}); "
           f"{alerts} alerts  [target < {TARGET_TICK_MS:g} ms: {verdict(tick < TARGET_TICK_MS)}]")
-    rest = statistics.median(t["tick"] - sum(t.get(k, 0) for k in PARTS) for t in timer.ticks)
+    rest = statistics.median(_rest(t) for t in timer.ticks)
     print(f"  parts (medians): joint.forecast {fc:7.1f} ms | joint.observe {ob:7.1f} ms "
           f"(learn + attribution) | baseline {bl:6.1f} ms | alert records {timer.median('alert records'):6.1f} ms "
           f"| incidents {timer.median('incidents'):6.1f} ms | rest (scores, rules, impute) {rest:6.1f} ms")
@@ -394,8 +400,7 @@ def main() -> None:
     if args.per_tick:
         for k, t in enumerate(timer.ticks):
             print(f"  tick {k + 1}: {t['tick']:7.1f} ms = " + " + ".join(
-                f"{part} {t.get(part, 0):.1f}" for part in PARTS) +
-                f" + rest {t['tick'] - sum(t.get(p, 0) for p in PARTS):.1f}")
+                f"{part} {t.get(part, 0):.1f}" for part in PARTS) + f" + rest {_rest(t):.1f}")
     print(f"peak memory (ru_maxrss, whole process incl. build): {peak:.2f} GiB  "
           f"[target < {TARGET_PEAK_GIB:g} GiB: {verdict(peak < TARGET_PEAK_GIB)}]; "
           f"peak over the ticks alone (VmHWM after reset): {tick_peak:.2f} GiB")
